@@ -1,0 +1,5 @@
+import sys
+
+from diagnostics.cli import main
+
+sys.exit(main())

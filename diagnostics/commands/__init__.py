@@ -1,0 +1,1 @@
+"""One module per ``beamdiag`` subcommand; see :mod:`diagnostics.cli`."""

@@ -1,0 +1,40 @@
+"""Small helpers shared by the subcommands: JSON lines, unit formatting, paths."""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from collections.abc import Iterable, Iterator
+from pathlib import Path
+from typing import Any, TextIO
+
+from diagnostics.results import jsonable
+
+
+def emit_json(record: dict[str, Any], stream: TextIO | None = None) -> None:
+    """Print one JSON object on one line (NaN/inf already mapped to null)."""
+    stream = stream or sys.stdout
+    stream.write(json.dumps(jsonable(record), allow_nan=False, separators=(",", ":")) + "\n")
+    stream.flush()
+
+
+def fmt(value: float | None, scale: float = 1.0, digits: int = 3) -> str:
+    """Format ``value * scale`` with ``digits`` significant digits, '-' for missing."""
+    if value is None or not math.isfinite(value):
+        return "-"
+    return f"{value * scale:.{digits}g}"
+
+
+def iter_files(paths: Iterable[str | Path], suffixes: tuple[str, ...] | None = None) -> Iterator[Path]:
+    """Files named, and files below named folders (sorted), optionally by suffix."""
+    for raw in paths:
+        path = Path(raw)
+        if path.is_dir():
+            for child in sorted(p for p in path.rglob("*") if p.is_file()):
+                if child.name.startswith(".") or any(part.startswith(".") for part in child.relative_to(path).parts):
+                    continue
+                if suffixes is None or child.suffix.lower() in suffixes:
+                    yield child
+        else:
+            yield path
