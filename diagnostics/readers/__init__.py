@@ -1,0 +1,1 @@
+"""Readers: measurement files -> SI data (placeholder, filled below)."""
