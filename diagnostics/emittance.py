@@ -45,10 +45,10 @@ from typing import Any
 import numpy as np
 from scipy import optimize, stats
 
-from diagnostics import optics
+from diagnostics import optics, particles
 from diagnostics.errors import InputError
-from diagnostics.measurements import DesignTwiss
-from diagnostics.particles import Kinematics, beta_gamma_err, larmor_k
+from diagnostics.measurements import DesignTwiss, ScanSpec
+from diagnostics.particles import Kinematics, beta_gamma_err, k1_from_gradient, larmor_k
 from diagnostics.results import FLAGS, merge_flags
 
 #: Transfer-matrix models of a scanned magnet: thick hard-edge lens, or thin lens at its centre.
@@ -600,8 +600,11 @@ def fit_sigma_matrix(
     seed : int or numpy Generator, optional
     constrained : bool
         If the linear solution is not positive definite, refit with
-        ``S = L L^T`` (``scipy.optimize.least_squares``); a solution on the
-        ``det S = 0`` boundary is still flagged ``unphysical``.
+        ``S = L L^T`` (``scipy.optimize.least_squares``) and report that matrix.
+        The objective is convex in ``S`` and the positive semi-definite matrices
+        form a convex set, so such a refit normally ends on the ``det S = 0``
+        boundary; it is then still flagged ``unphysical`` (no emittance), and the
+        constrained matrix shows the nearest physical beam.
     kinematics : Kinematics, optional
         For the normalised emittance; ``kinetic_energy_err_MeV`` adds the
         ``beta gamma`` uncertainty.
@@ -718,19 +721,24 @@ def fit_sigma_matrix(
         notes.append("exact solve with relative weights: no uncertainty estimate")
 
     constrained_note = None
+    on_boundary = False
     tw = _twiss_of(s)
     if tw is None and constrained:
         s_c, success = _constrained(rows, prep.y, prep.var, s)
         det_ratio = (s_c[0] * s_c[2] - s_c[1] ** 2) / (s_c[0] * s_c[2]) if s_c[0] > 0 and s_c[2] > 0 else 0.0
-        if success and det_ratio > BOUNDARY_DET_RATIO:
+        if success:
             s = s_c
-            tw = _twiss_of(s)
-            constrained_note = "linear solution not positive definite; Cholesky-constrained fit used"
             chi2_c = float(np.sum((rows @ s - prep.y) ** 2 / prep.var))
             if chi2_red is not None:
                 chi2_red = chi2_c / dof
+            if det_ratio > BOUNDARY_DET_RATIO:
+                tw = _twiss_of(s)
+                constrained_note = "linear solution not positive definite; Cholesky-constrained fit used"
+            else:
+                on_boundary = True
+                notes.append("linear solution not positive definite and the Cholesky-constrained fit sits on the det = 0 boundary (emittance consistent with zero)")
         else:
-            notes.append("Cholesky-constrained fit sits on the det = 0 boundary")
+            notes.append("the Cholesky-constrained fit did not converge")
 
     if optics_model is not None and prep.settings is not None:
         reason = _waist_check(prep.settings, optics_model, plane, s)
@@ -752,7 +760,8 @@ def fit_sigma_matrix(
     if tw is None:
         flags.append("unphysical")
         det = s[0] * s[2] - s[1] ** 2
-        notes.append(f"fitted beam matrix not positive definite (S11={s[0]:.3g} m^2, S22={s[2]:.3g}, det={det:.3g}): no emittance")
+        if not on_boundary:
+            notes.append(f"fitted beam matrix not positive definite (S11={s[0]:.3g} m^2, S22={s[2]:.3g}, det={det:.3g}): no emittance")
         if bootstrap:
             values["bootstrap"] = _bootstrap(*scaled, bootstrap, seed)
         return _plain_result(plane, reference_point, flags, "; ".join(notes), **values)
@@ -1188,3 +1197,392 @@ def analyze_multi_monitor(
 
 
 analyze_multi_monitor.__doc__ += _COMMON_DOC
+
+
+# ----------------------------------------------------------------------------------------------
+# Scans as loaded from a folder
+
+
+def scan_optics(spec: ScanSpec, *, method: str = "thick", kin: Kinematics | None = None) -> ScanOptics:
+    """The :class:`ScanOptics` of a loaded scan (matrices for any setting).
+
+    For a multi-monitor measurement the setting of step ``i`` is ``i`` and the
+    stacks hold each step's monitor matrices.
+    """
+    _check_method(method)
+    where = spec.folder or spec.name or "scan"
+    if spec.kind == "multi_monitor":
+        by_name = {m.name: m for m in spec.monitors}
+        mx, my = [], []
+        for step in spec.steps:
+            mon = by_name.get(step.monitor or "")
+            if mon is None:
+                raise InputError(f"{where}: step {step.index}: 'monitor' {step.monitor!r} is not in 'monitors'")
+            if mon.matrix_x is None or mon.matrix_y is None:
+                raise InputError(f"{where}: monitor {mon.name!r}: 'matrix_x' and 'matrix_y' are required")
+            mx.append(optics.general(mon.matrix_x))
+            my.append(optics.general(mon.matrix_y))
+        shape = (0, 2, 2)
+        return ScanOptics(
+            "multi_monitor",
+            method=method,
+            monitor_x=np.array(mx).reshape(-1, 2, 2) if mx else np.zeros(shape),
+            monitor_y=np.array(my).reshape(-1, 2, 2) if my else np.zeros(shape),
+        )
+    if spec.magnet is None:
+        raise InputError(f"{where}: scan.json: a '{spec.kind}' block with 'length_m' is required")
+    if spec.transport_x is None or spec.transport_y is None:
+        raise InputError(f"{where}: scan.json: 'transport' (drift_m or matrix_x/matrix_y) is required")
+    kin = kin or particles.kinematics(spec.kinetic_energy_MeV, spec.particle)
+    return ScanOptics(
+        spec.kind,
+        method=method,
+        length_m=float(spec.magnet.length_m),
+        transport_x=optics.general(spec.transport_x),
+        transport_y=optics.general(spec.transport_y),
+        brho_T_m=float(kin.brho_T_m),
+    )
+
+
+def _profile_size(profile, *, profile_model: str, size_source: str):
+    """(sigma_m, sigma_err_m, flags, note) of one wire profile via diagnostics.profiles."""
+    # imported here: the profile module is only needed for steps with raw profiles
+    from diagnostics import profiles
+
+    res = profiles.analyze_profile(profile.position_m, profile.signal, model=profile_model)
+    return _pick_size(res, "", size_source)
+
+
+def _pick_size(res, suffix: str, size_source: str):
+    """Pick the fitted sigma or the rms (and their errors) from a profile/image result."""
+    flags = tuple(f for f in getattr(res, "flags", ()) if f in FLAGS)
+    if size_source == "rms":
+        value = getattr(res, f"rms{suffix}_m", None)
+        err = getattr(res, f"rms{suffix}_err_m", None)
+    else:
+        value = getattr(res, f"sigma{suffix}_m", None)
+        err = getattr(res, f"sigma{suffix}_err_m", None)
+    usable = value is not None and math.isfinite(value) and value > 0 and "fit_failed" not in flags
+    note = "" if usable else (getattr(res, "message", "") or "no usable size")
+    if not usable:
+        value, err = None, None
+    return value, err, flags, note
+
+
+def _step_sizes(step, *, profile_model: str, size_source: str):
+    """Sizes of one step: ((sx, ex, fx), (sy, ey, fy), note)."""
+    notes = []
+    out = {}
+    if step.frame is not None:
+        from diagnostics import images
+
+        fr = step.frame
+        res = images.analyze_image(fr.pixels, pixel_size_m=fr.pixel_size_m, dark=fr.dark, bit_depth=fr.bit_depth, roi=fr.roi)
+        for plane in ("x", "y"):
+            out[plane] = _pick_size(res, f"_{plane}", size_source)
+    for plane in ("x", "y"):
+        prof = getattr(step, f"profile_{plane}")
+        given = getattr(step, f"sigma_{plane}_m")
+        if given is not None:
+            out[plane] = (float(given), getattr(step, f"sigma_{plane}_err_m"), (), "")
+        elif prof is not None:
+            out[plane] = _profile_size(prof, profile_model=profile_model, size_source=size_source)
+        out.setdefault(plane, (None, None, (), "no size for this plane"))
+        if out[plane][3]:
+            notes.append(f"{plane}: {out[plane][3]}")
+    return out["x"], out["y"], "; ".join(notes)
+
+
+def analyze_scan(
+    spec: ScanSpec,
+    *,
+    method: str = "thick",
+    bootstrap: int = 0,
+    resolution_m: float | None = None,
+    profile_model: str = "gaussian",
+    size_source: str = "fit",
+    seed=None,
+    constrained: bool = False,
+    energy_spread: float | None = None,
+    chromatic: str = "estimate",
+    kinetic_energy_err_MeV: float = 0.0,
+) -> EmittanceResult:
+    """Emittance of a loaded quad scan, solenoid scan or multi-monitor measurement.
+
+    Each step's sizes come from the sizes given in the scan file, from its wire
+    profiles (:func:`diagnostics.profiles.analyze_profile`) or from its image
+    (:func:`diagnostics.images.analyze_image`); ``gradient_T_per_m`` steps become
+    ``k1 = G / B rho`` with the scan's particle and energy (B rho as a magnitude,
+    see :mod:`diagnostics.particles`).
+
+    Parameters
+    ----------
+    spec : ScanSpec
+    method : {"thick", "thin"}
+    bootstrap : int
+        Bootstrap samples per plane.
+    resolution_m : float, optional
+        Overrides the monitor resolution(s) of the scan file, m.
+    profile_model : str
+        Passed to the profile analysis as ``model``.
+    size_source : {"fit", "rms"}
+        Use the fitted Gaussian sigma or the rms of each profile/image.
+    seed, constrained, energy_spread, chromatic, kinetic_energy_err_MeV
+        See :func:`fit_sigma_matrix`; ``energy_spread`` defaults to the scan file's.
+
+    Returns
+    -------
+    EmittanceResult
+    """
+    _check_method(method)
+    if size_source not in SIZE_SOURCES:
+        raise InputError(f"size_source: expected one of {', '.join(SIZE_SOURCES)}, got {size_source!r}")
+    where = spec.folder or spec.name or "scan"
+    kin = particles.kinematics(spec.kinetic_energy_MeV, spec.particle)
+    scan = scan_optics(spec, method=method, kin=kin)
+    settings: list[float] = []
+    labels: list[Any] = []
+    for step in spec.steps:
+        if spec.kind == "quadrupole":
+            if step.k1_per_m2 is not None:
+                settings.append(float(step.k1_per_m2))
+            elif step.gradient_T_per_m is not None:
+                settings.append(float(k1_from_gradient(float(step.gradient_T_per_m), kin.brho_T_m)))
+            else:
+                raise InputError(f"{where}: step {step.index}: 'k1_per_m2' or 'gradient_T_per_m' is required")
+            labels.append(settings[-1])
+        elif spec.kind == "solenoid":
+            if step.field_T is None:
+                raise InputError(f"{where}: step {step.index}: 'field_T' is required for a solenoid scan")
+            settings.append(float(step.field_T))
+            labels.append(settings[-1])
+        else:
+            settings.append(float(len(settings)))
+            labels.append(step.monitor)
+    sx, ex, fx, sy, ey, fy, step_notes = [], [], [], [], [], [], []
+    for step in spec.steps:
+        (a, b, c), (d, e, f), note = _step_sizes(step, profile_model=profile_model, size_source=size_source)
+        sx.append(a)
+        ex.append(b)
+        fx.append(c)
+        sy.append(d)
+        ey.append(e)
+        fy.append(f)
+        step_notes.append(note)
+    by_name = {m.name: m for m in spec.monitors}
+    if resolution_m is not None:
+        res: Any = float(resolution_m)
+    elif spec.kind == "multi_monitor":
+        res = np.array([by_name[s.monitor].resolution_m for s in spec.steps], dtype=float)
+    else:
+        res = float(spec.monitors[0].resolution_m) if spec.monitors else 0.0
+    extra_flags = [] if spec.complete else ["provisional"]
+    extra_notes = [] if spec.complete else [f"scan incomplete ({len(spec.steps)} of {spec.expected_steps} steps)"]
+    skipped = [f"step {s.index}: {n}" for s, n in zip(spec.steps, step_notes, strict=True) if n]
+    if skipped:
+        extra_notes.append("; ".join(skipped))
+    options = {
+        "profile_model": profile_model,
+        "size_source": size_source,
+        "monitor": spec.monitors[0].name if len(spec.monitors) == 1 else [m.name for m in spec.monitors],
+        "magnet": None if spec.magnet is None else spec.magnet.name,
+        "kinetic_energy_MeV": spec.kinetic_energy_MeV,
+    }
+    energy_spread = spec.energy_spread if energy_spread is None else energy_spread
+
+    def errs(values):
+        return None if all(v is None for v in values) else values
+
+    common = dict(
+        sigma_x_err_m=errs(ex),
+        sigma_y_err_m=errs(ey),
+        kin=kin,
+        resolution_m=res,
+        resolution_err_m=0.0,
+        design=dict(spec.design),
+        energy_spread=energy_spread,
+        chromatic=chromatic,
+        bootstrap=bootstrap,
+        seed=seed,
+        constrained=constrained,
+        kinetic_energy_err_MeV=kinetic_energy_err_MeV,
+        step_flags_x=fx,
+        step_flags_y=fy,
+        step_labels=labels,
+        name=spec.name,
+        timestamp=spec.timestamp,
+        options=options,
+        thin_check=spec.kind == "quadrupole",
+        extra_flags=extra_flags,
+        extra_notes=extra_notes,
+    )
+    result = _scan_front_end(scan, np.array(settings), sx, sy, **common)
+    steps = tuple(
+        dataclasses.replace(st, message=note) for st, note in zip(result.steps, step_notes, strict=True)
+    )
+    return dataclasses.replace(result, steps=steps)
+
+
+# ----------------------------------------------------------------------------------------------
+# Propagation and plotting
+
+
+@dataclass(frozen=True)
+class MonitorBeam:
+    """The fitted beam of one plane carried to the monitor for one setting.
+
+    ``sigma_m``/``sigma_err_m`` is the predicted rms size there (without the
+    monitor resolution); Twiss values are ``None`` when the fit is unphysical.
+    """
+
+    plane: str
+    setting: float
+    sigma_m: float | None
+    sigma_err_m: float | None
+    sigma11_m2: float
+    sigma12_m: float
+    sigma22: float
+    emittance_m_rad: float | None
+    beta_m: float | None
+    beta_err_m: float | None
+    alpha: float | None
+    alpha_err: float | None
+
+
+def _sigma_transform(r: np.ndarray) -> np.ndarray:
+    """3x3 linear map of (S11, S12, S22) under S -> R S R^T."""
+    r11, r12, r21, r22 = r[0, 0], r[0, 1], r[1, 0], r[1, 1]
+    return np.array(
+        [
+            [r11 * r11, 2 * r11 * r12, r12 * r12],
+            [r11 * r21, r11 * r22 + r12 * r21, r12 * r22],
+            [r21 * r21, 2 * r21 * r22, r22 * r22],
+        ]
+    )
+
+
+def propagate_plane(plane: PlaneResult, matrix, *, setting: float = math.nan) -> MonitorBeam | None:
+    """Carry a plane's fitted beam matrix (and covariance) through ``matrix``: ``S1 = R S R^T``."""
+    if plane.sigma11_m2 is None:
+        return None
+    t = _sigma_transform(optics.general(matrix))
+    s = t @ np.array([plane.sigma11_m2, plane.sigma12_m, plane.sigma22])
+    cov = plane.cov_matrix()
+    cov1 = None if cov is None else t @ cov @ t.T
+    size = math.sqrt(s[0]) if s[0] > 0 else None
+    size_err = None if (cov1 is None or size is None) else math.sqrt(max(cov1[0, 0], 0.0)) / (2 * size)
+    tw = _twiss_of(s) if plane.ok else None
+    b_err = a_err = None
+    if tw is not None and cov1 is not None:
+        jac = twiss_jacobian(*s)
+        c3 = jac @ cov1 @ jac.T
+        b_err, a_err = math.sqrt(max(c3[1, 1], 0.0)), math.sqrt(max(c3[2, 2], 0.0))
+    return MonitorBeam(
+        plane=plane.plane,
+        setting=float(setting),
+        sigma_m=size,
+        sigma_err_m=size_err,
+        sigma11_m2=float(s[0]),
+        sigma12_m=float(s[1]),
+        sigma22=float(s[2]),
+        emittance_m_rad=None if tw is None else tw[0],
+        beta_m=None if tw is None else tw[1],
+        beta_err_m=b_err,
+        alpha=None if tw is None else tw[2],
+        alpha_err=a_err,
+    )
+
+
+def _optics_for(result: EmittanceResult, spec_or_inputs) -> ScanOptics:
+    method = str(result.options.get("method", "thick"))
+    if isinstance(spec_or_inputs, ScanOptics):
+        return spec_or_inputs
+    if isinstance(spec_or_inputs, ScanSpec):
+        return scan_optics(spec_or_inputs, method=method, kin=result.kinematics)
+    raise TypeError("spec_or_inputs must be a ScanSpec or a ScanOptics")
+
+
+def propagate_to_monitor(result: EmittanceResult, spec_or_inputs, *, setting: float) -> dict[str, MonitorBeam | None]:
+    """Beam matrix and Twiss of both planes at the monitor for one scan ``setting``.
+
+    ``setting`` is k1 (m^-2), the solenoid field (T), or the step index of a
+    multi-monitor measurement.
+    """
+    scan = _optics_for(result, spec_or_inputs)
+    out = {}
+    for name in ("x", "y"):
+        plane = getattr(result, name)
+        r = scan.matrices(name, [setting])[0]
+        out[name] = propagate_plane(plane, r, setting=setting)
+    return out
+
+
+def _resolution_per_step(result: EmittanceResult, plane: str, n: int) -> np.ndarray:
+    res = result.options.get("resolution_m", 0.0)
+    if isinstance(res, Mapping):
+        res = res.get(plane, 0.0)
+    arr = np.asarray(res, dtype=float).reshape(-1)
+    return np.broadcast_to(arr if arr.size in (1, n) else arr[:1], (n,)).astype(float)
+
+
+def scan_plot_data(result: EmittanceResult, spec_or_inputs, *, n_grid: int = 200, n_ellipse: int = 181) -> dict:
+    """Plot-ready data of a scan result (plain lists, SI units).
+
+    Returns
+    -------
+    dict
+        ``{"kind", "setting_name", "planes": {"x": {...}, "y": {...}}}`` where each
+        plane holds ``setting`` / ``sigma2_m2`` / ``sigma2_err_m2`` / ``used`` per
+        step (measured, resolution included), ``grid`` with ``fit_sigma2_m2`` and
+        ``band_lo_m2``/``band_hi_m2`` (fitted curve with resolution added back,
+        +-1 standard deviation from the covariance), and ``ellipse`` with
+        ``measured`` and ``design`` point lists ``{"x_m", "xp_rad"}`` (the design
+        ellipse drawn with the measured emittance; ``None`` when missing).
+    """
+    scan = _optics_for(result, spec_or_inputs)
+    n = len(result.steps)
+    settings = np.array([float(i) if scan.kind == "multi_monitor" else float(st.setting) for i, st in enumerate(result.steps)])
+    if scan.kind == "multi_monitor" or n == 0:
+        grid = settings.copy()
+    else:
+        lo, hi = float(settings.min()), float(settings.max())
+        pad = 0.05 * (hi - lo)
+        grid = np.linspace(lo - pad, hi + pad, int(n_grid))
+    planes = {}
+    for name in ("x", "y"):
+        plane: PlaneResult = getattr(result, name)
+        sig = np.array([np.nan if getattr(st, f"sigma_{name}_m") is None else getattr(st, f"sigma_{name}_m") for st in result.steps], dtype=float)
+        err = np.array([np.nan if getattr(st, f"sigma_{name}_err_m") is None else getattr(st, f"sigma_{name}_err_m") for st in result.steps], dtype=float)
+        used = [bool(getattr(st, f"used_{name}")) for st in result.steps]
+        res = _resolution_per_step(result, name, n)
+        entry: dict[str, Any] = {
+            "setting": settings.tolist(),
+            "sigma2_m2": (sig**2).tolist(),
+            "sigma2_err_m2": (2 * sig * err).tolist(),
+            "used": used,
+            "grid": grid.tolist(),
+            "fit_sigma2_m2": None,
+            "band_lo_m2": None,
+            "band_hi_m2": None,
+            "ellipse": {"measured": None, "design": None},
+        }
+        s = plane.sigma_matrix()
+        if s is not None and grid.size:
+            rows = design_rows(scan.matrices(name, grid))
+            vec = np.array([s[0, 0], s[0, 1], s[1, 1]])
+            grid_res = res if scan.kind == "multi_monitor" else np.full(grid.size, res[0] if res.size else 0.0)
+            fit = rows @ vec + grid_res**2
+            entry["fit_sigma2_m2"] = fit.tolist()
+            cov = plane.cov_matrix()
+            if cov is not None:
+                band = np.sqrt(np.maximum(np.einsum("ni,ij,nj->n", rows, cov, rows), 0.0))
+                entry["band_lo_m2"] = (fit - band).tolist()
+                entry["band_hi_m2"] = (fit + band).tolist()
+        if plane.ok:
+            x, xp = optics.ellipse_points(plane.emittance_m_rad, plane.beta_m, plane.alpha, n_points=n_ellipse)
+            entry["ellipse"]["measured"] = {"x_m": x.tolist(), "xp_rad": xp.tolist()}
+            if plane.design_beta_m is not None:
+                x, xp = optics.ellipse_points(plane.emittance_m_rad, plane.design_beta_m, plane.design_alpha, n_points=n_ellipse)
+                entry["ellipse"]["design"] = {"x_m": x.tolist(), "xp_rad": xp.tolist()}
+        planes[name] = entry
+    return {"kind": result.kind, "setting_name": scan.setting_name, "reference_point": result.x.reference_point, "planes": planes}
