@@ -303,7 +303,8 @@ def _looks_epoch(value: str | None) -> bool:
     return value is not None and bool(_EPOCH_RE.match(value.strip()))
 
 
-def read_csv_table(path: Path, head: CsvHead, kinds: Mapping[str, str]) -> tuple[pa.Table, RowName]:
+def read_csv_table(path: Path, head: CsvHead, kinds: Mapping[str, str], *,
+                   only: bool = False) -> tuple[pa.Table, RowName]:
     """Read a CSV body into Arrow with the given column kinds, fast, or fail precisely.
 
     ``kinds`` maps column name -> ``"time"``, ``"float"`` or ``"text"``; any other
@@ -315,14 +316,16 @@ def read_csv_table(path: Path, head: CsvHead, kinds: Mapping[str, str]) -> tuple
     The fast path is one multi-threaded :func:`pyarrow.csv.read_csv` with explicit
     column types.  When it fails, the file is read again as text and each typed
     column is searched (by bisection) for the first value that does not convert,
-    so the message can name the line and the value.
+    so the message can name the line and the value.  With ``only``, columns not
+    in ``kinds`` are dropped.
     """
     first = dict(zip(head.names, head.first_row or (), strict=False))
     epoch = {name: _looks_epoch(first.get(name)) for name, kind in kinds.items() if kind == "time"}
     types = {name: _arrow_type(kind, epoch.get(name, False)) for name, kind in kinds.items()}
     read = pcsv.ReadOptions(column_names=list(head.names), skip_rows=1, block_size=8 << 20)
     convert = pcsv.ConvertOptions(column_types=types, null_values=[""], strings_can_be_null=False,
-                                  quoted_strings_can_be_null=False)
+                                  quoted_strings_can_be_null=False,
+                                  include_columns=list(kinds) if only else [])
 
     def row_name(i: int) -> str:
         return f"line {line_of_row(path, head, i)}"
@@ -331,6 +334,8 @@ def read_csv_table(path: Path, head: CsvHead, kinds: Mapping[str, str]) -> tuple
         table = _read_csv(path, head, read, convert)
     except LIBRARY_ERRORS:
         table = _diagnose_csv(path, head, kinds, types, row_name)
+        if only:
+            table = table.select(list(kinds))
     return _epoch_to_time(table, epoch, path, row_name), row_name
 
 
