@@ -1361,7 +1361,7 @@ def analyze_scan(
             labels.append(step.monitor)
     sx, ex, fx, sy, ey, fy, step_notes = [], [], [], [], [], [], []
     for step in spec.steps:
-        (a, b, c), (d, e, f), note = _step_sizes(step, profile_model=profile_model, size_source=size_source)
+        (a, b, c, _), (d, e, f, _), note = _step_sizes(step, profile_model=profile_model, size_source=size_source)
         sx.append(a)
         ex.append(b)
         fx.append(c)
