@@ -476,6 +476,19 @@ def _reader_version() -> str:
                                                           diagnostics.__version__)))
 
 
+def _readers() -> Any:
+    """The reader modules (imported on first use: the store works without them)."""
+    import importlib
+
+    try:
+        package = importlib.import_module("diagnostics.readers")
+        for name in ("bpm", "slow", "wire", "screen", "scan"):
+            importlib.import_module(f"diagnostics.readers.{name}")
+    except ImportError as exc:  # the readers are part of the package
+        raise StoreError(f"the readers cannot be imported: {exc}") from exc
+    return package
+
+
 def _pixel_bytes(array: np.ndarray, what: str) -> tuple[bytes, str]:
     """Pixels as little-endian row-major bytes plus the dtype string that reads them back."""
     arr = np.asarray(array)
@@ -857,10 +870,18 @@ class Store:
 
     def _write_files(self, kind: str, parts: Sequence[tuple[str, pa.Table]], prefix: str,
                      **write_options: Any) -> list[dict[str, Any]]:
-        """Write (date, table) parts atomically; return catalog entries (not yet live)."""
+        """Write (date, table) parts atomically; return catalog entries (not yet live).
+
+        ``prefix`` is the input's SHA-256: files are ``part-<sha[:16]>-<n>.parquet``,
+        or ``part-<sha>-<n>.parquet`` if another input already owns the short name.
+        """
         entries = []
         for n, (date, table) in enumerate(parts):
-            rel = f"{kind}/date={date}/part-{prefix}-{n}.parquet"
+            rel = f"{kind}/date={date}/part-{prefix[:16]}-{n}.parquet"
+            owners = {r["sha256"] for r in self._catalog.query(
+                "SELECT sha256 FROM file_sources WHERE path = ?", (rel,))}
+            if owners - {prefix}:  # 64-bit prefix clash with another input: use the full hash
+                rel = f"{kind}/date={date}/part-{prefix}-{n}.parquet"
             path = atomic_write_table(table, self.root / rel, **write_options)
             ts = table.column("timestamp").cast(pa.int64())
             bounds = pc.min_max(ts)
@@ -884,7 +905,7 @@ class Store:
         table = _normalise_readings(_arrow_from_frame(df, what), schema, what)
         table = table.replace_schema_metadata({**schema.metadata, b"source": source.encode()})
         parts = _split_by_date(_sorted_by_time(table))
-        entries = self._write_files(kind, parts, sha256[:16], row_group_size=READINGS_PER_ROW_GROUP)
+        entries = self._write_files(kind, parts, sha256, row_group_size=READINGS_PER_ROW_GROUP)
         with self._catalog.connect() as con:
             self._catalog.register_files(con, entries, [sha256])
         return [self.root / e["path"] for e in entries]
@@ -939,7 +960,7 @@ class Store:
         ids = [f"{prefix}-{i}" for i in range(len(profiles))]
         parts = self._profile_parts(profiles, sha256=sha256, source=source, scan=scan,
                                     scan_version=None, steps=[step] * len(profiles), ids=ids)
-        entries = self._write_files("profiles", parts, sha256[:16])
+        entries = self._write_files("profiles", parts, sha256)
         with self._catalog.connect() as con:
             self._catalog.register_files(con, entries, [sha256])
         return [self.root / e["path"] for e in entries]
@@ -959,7 +980,7 @@ class Store:
         ids = [f"{prefix}-{i}" for i in range(len(frames))]
         parts = self._frame_parts(frames, sha256=sha256, source=source, scan=scan,
                                   scan_version=None, steps=[step] * len(frames), ids=ids)
-        entries = self._write_files("frames", parts, sha256[:16], **_FRAME_WRITE)
+        entries = self._write_files("frames", parts, sha256, **_FRAME_WRITE)
         with self._catalog.connect() as con:
             self._catalog.register_files(con, entries, [sha256])
         return [self.root / e["path"] for e in entries]
@@ -1016,15 +1037,15 @@ class Store:
         scan_table = pa.Table.from_arrays(
             [pa.array([row[f.name]], pa.int64()).cast(_TS) if f.name == "timestamp"
              else pa.array([row[f.name]], f.type) for f in SCANS_SCHEMA], schema=SCANS_SCHEMA)
-        entries = self._write_files("scans", _split_by_date(scan_table), sha256[:16])
+        entries = self._write_files("scans", _split_by_date(scan_table), sha256)
         if profiles:
             parts = self._profile_parts(profiles, sha256=sha256, source=source, scan=scan_id,
                                         scan_version=sha256, steps=p_steps, ids=p_ids)
-            entries += self._write_files("profiles", parts, sha256[:16])
+            entries += self._write_files("profiles", parts, sha256)
         if frames:
             parts = self._frame_parts(frames, sha256=sha256, source=source, scan=scan_id,
                                       scan_version=sha256, steps=f_steps, ids=f_ids)
-            entries += self._write_files("frames", parts, sha256[:16], **_FRAME_WRITE)
+            entries += self._write_files("frames", parts, sha256, **_FRAME_WRITE)
         with self._catalog.connect() as con:
             self._catalog.register_files(con, entries, [sha256])
             con.execute("INSERT OR REPLACE INTO scans (scan_id, sha256, name, time) VALUES"
@@ -1152,10 +1173,7 @@ class Store:
         mtime = pd.Timestamp(mtime_ns, unit="ns", tz="UTC").isoformat()
         meta = {"sha256": sha, "source": shown, "size": size, "mtime": mtime,
                 "reader_version": reader_version, "code_version": diagnostics.__version__}
-        try:
-            from diagnostics import readers
-        except ImportError as exc:  # the readers are part of the package
-            raise StoreError(f"the readers cannot be imported: {exc}") from exc
+        readers = _readers()
         tb = None
         try:
             if kind is None:
