@@ -896,6 +896,8 @@ def _scan_front_end(
     ey = None if sigma_y_err_m is None else _as_array(sigma_y_err_m, n, "sigma_y_err_m")
     design = design or {}
     ref = REFERENCE_POINTS.get(scan.kind, "reference point")
+    # one generator for both planes: reproducible, and x and y draw different resamples
+    rng = np.random.default_rng(seed) if bootstrap else None
     planes = {}
     for plane, sig, err, pflags in (
         ("x", sx, ex, _plane_flags(step_flags_x, n)),
@@ -910,7 +912,7 @@ def _scan_front_end(
             resolution_m=res_plane,
             resolution_err_m=resolution_err_m,
             bootstrap=bootstrap,
-            seed=seed,
+            seed=rng,
             constrained=constrained,
             kinematics=kin,
             kinetic_energy_err_MeV=kinetic_energy_err_MeV,
