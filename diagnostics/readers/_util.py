@@ -38,6 +38,9 @@ PARQUET_SUFFIXES = (".parquet", ".pq")
 #: Arrow type of every parsed time: nanoseconds, UTC.
 TIME_TYPE = pa.timestamp("ns", tz="UTC")
 
+#: Bytes per block of the multi-threaded CSV reader (each block is parsed on its own).
+BLOCK_SIZE = 8 << 20
+
 #: Column kinds a table spec may ask for.
 COLUMN_KINDS = ("time", "float", "text", "name")
 
@@ -168,7 +171,8 @@ def parse_time(value: object, path: Path, field: str) -> pd.Timestamp:
 def _epoch_seconds(seconds: float, path: Path, field: str) -> pd.Timestamp:
     if not math.isfinite(seconds) or abs(seconds) > _EPOCH_LIMIT_S:
         raise located(path, f"{field}: epoch seconds {seconds!r} out of range (1677..2262)")
-    return pd.Timestamp(round(seconds * 1e9), unit="ns", tz="UTC")
+    whole = math.floor(seconds)
+    return pd.Timestamp(whole * 1_000_000_000 + round((seconds - whole) * 1e9), unit="ns", tz="UTC")
 
 
 # --------------------------------------------------------------------------- numbers
@@ -322,7 +326,7 @@ def read_csv_table(path: Path, head: CsvHead, kinds: Mapping[str, str], *,
     first = dict(zip(head.names, head.first_row or (), strict=False))
     epoch = {name: _looks_epoch(first.get(name)) for name, kind in kinds.items() if kind == "time"}
     types = {name: _arrow_type(kind, epoch.get(name, False)) for name, kind in kinds.items()}
-    read = pcsv.ReadOptions(column_names=list(head.names), skip_rows=1, block_size=8 << 20)
+    read = pcsv.ReadOptions(column_names=list(head.names), skip_rows=1, block_size=BLOCK_SIZE)
     convert = pcsv.ConvertOptions(column_types=types, null_values=[""], strings_can_be_null=False,
                                   quoted_strings_can_be_null=False,
                                   include_columns=list(kinds) if only else [])
@@ -355,7 +359,7 @@ def _diagnose_csv(path: Path, head: CsvHead, kinds: Mapping[str, str], types: Ma
         bad_rows.append(row)
         return "error"
 
-    read = pcsv.ReadOptions(column_names=list(head.names), skip_rows=1, use_threads=False, block_size=8 << 20)
+    read = pcsv.ReadOptions(column_names=list(head.names), skip_rows=1, use_threads=False, block_size=BLOCK_SIZE)
     parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
     convert = pcsv.ConvertOptions(column_types=dict.fromkeys(head.names, pa.string()),
                                   strings_can_be_null=False, quoted_strings_can_be_null=False)
@@ -456,14 +460,18 @@ def _epoch_to_time(table: pa.Table, epoch: Mapping[str, bool], path: Path, row_n
 def epoch_to_ns(seconds: np.ndarray, path: Path, name: str, row_name: RowName) -> np.ndarray:
     """Epoch seconds (float) -> int64 nanoseconds; NaN, inf and out-of-range are errors.
 
-    Float64 seconds near 2026 resolve about 0.2 microseconds, the precision kept.
+    Float64 seconds near 2026 resolve about 0.2 microseconds; that is the
+    precision of an epoch column.
     """
     bad = ~(np.abs(seconds) <= _EPOCH_LIMIT_S)  # also catches NaN
     if bad.any():
         i = int(np.argmax(bad))
         raise located(path, f"{row_name(i)}: column {name!r} has {float(seconds[i])!r} "
                             "(expected epoch seconds between 1677 and 2262, or an ISO 8601 time)")
-    return np.round(seconds * 1e9).astype(np.int64)
+    # whole seconds and the fraction separately: both exact in float64, so the
+    # nanoseconds are those of the float's exact value (no 256 ns product rounding)
+    whole = np.floor(seconds)
+    return whole.astype(np.int64) * 1_000_000_000 + np.round((seconds - whole) * 1e9).astype(np.int64)
 
 
 def parquet_names(path: Path) -> tuple[str, ...]:
@@ -494,7 +502,7 @@ def read_parquet_table(path: Path, kinds: Mapping[str, str]) -> tuple[pa.Table, 
         column = table.column(name)
         columns[name] = (convert_column(column, kinds[name], path, name, row_name)
                          if name in kinds else column.combine_chunks())
-    return pa.table(columns), row_name
+    return pa.table(columns, metadata=table.schema.metadata), row_name
 
 
 def convert_column(column: pa.ChunkedArray, kind: str, path: Path, name: str, row_name: RowName) -> pa.Array:

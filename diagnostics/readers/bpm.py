@@ -132,8 +132,10 @@ def _position_column(path: Path, names: tuple[str, ...], plane: str) -> str:
         raise located(path, f"columns {found} give the {plane} position twice (expected one of them)")
     if not found:
         options = ", ".join(f"{plane}_{unit}" for unit in POSITION_UNITS)
-        hint = _util.did_you_mean(f"{plane}_mm", names)
-        stray = [n for n in names if n.startswith(f"{plane}_") or n == plane]
+        known = {"timestamp", "bpm", "sum", *(f"{q}_{u}" for q in "xy" for u in POSITION_UNITS)}
+        others = [n for n in names if n not in known]
+        hint = _util.did_you_mean(f"{plane}_mm", others)
+        stray = [n for n in others if n.startswith(f"{plane}_") or n == plane]
         unit_hint = f"; unknown unit in {stray[0]!r}" if stray and not hint else ""
         raise located(path, f"missing column {plane}_mm{hint}{unit_hint} (expected one of {options}); "
                             f"columns found: {', '.join(repr(n) for n in names)}")

@@ -99,7 +99,7 @@ def read_profile_with_origin(path: str | Path) -> tuple[Profile, bool]:
         table, row_name = _util.read_parquet_table(p, {"position": "float", "signal": "float"})
         _require_columns(p, table.column_names)
         header = _parquet_header(p, table)
-    return _build(p, header, table, row_name)
+    return _build(p, header, table, row_name, "header" if fmt == "csv" else "metadata key")
 
 
 def _csv_header(path: Path, head: _util.CsvHead) -> dict[str, str]:
@@ -145,21 +145,22 @@ def _require_columns(path: Path, names: tuple[str, ...] | list[str]) -> None:
             raise _util.missing_column(path, required, list(names))
 
 
-def _build(path: Path, header: dict[str, str], table: pa.Table, row_name: _util.RowName) -> tuple[Profile, bool]:
+def _build(path: Path, header: dict[str, str], table: pa.Table, row_name: _util.RowName,
+           label: str) -> tuple[Profile, bool]:
     plane = header.get("plane")
     if plane is None:
-        raise located(path, f"header 'plane' missing{_util.did_you_mean('plane', header)} (expected '# plane: x', y or u)")
+        raise located(path, f"{label} 'plane' missing{_util.did_you_mean('plane', header)} (expected '# plane: x', y or u)")
     plane = plane.strip().lower()
     if plane not in PLANES:
-        raise located(path, f"header 'plane': {header['plane']!r} is not one of {', '.join(PLANES)}")
-    angle_rad = _wire_angle(path, header, plane)
+        raise located(path, f"{label} 'plane': {header['plane']!r} is not one of {', '.join(PLANES)}")
+    angle_rad = _wire_angle(path, header, plane, label)
     if "timestamp" not in header:
-        raise located(path, f"header 'timestamp' missing{_util.did_you_mean('timestamp', header)} "
+        raise located(path, f"{label} 'timestamp' missing{_util.did_you_mean('timestamp', header)} "
                             "(expected an ISO 8601 time with zone, e.g. 2026-11-30T08:15:00Z)")
-    timestamp = _util.parse_time(header["timestamp"], path, "header 'timestamp'")
+    timestamp = _util.parse_time(header["timestamp"], path, f"{label} 'timestamp'")
     unit = header.get("position_unit", "mm").strip()
     if unit not in POSITION_UNITS:
-        raise located(path, f"header 'position_unit': unknown unit {unit!r} (expected m, mm or um)")
+        raise located(path, f"{label} 'position_unit': unknown unit {unit!r} (expected m, mm or um)")
     device = header.get("device", "").strip()
     given = bool(device)
     if not given:
@@ -180,20 +181,20 @@ def _build(path: Path, header: dict[str, str], table: pa.Table, row_name: _util.
     return profile, given
 
 
-def _wire_angle(path: Path, header: dict[str, str], plane: str) -> float:
+def _wire_angle(path: Path, header: dict[str, str], plane: str, label: str) -> float:
     text = header.get("wire_angle_deg")
     if text is None:
         if plane == "u":
-            raise located(path, "header 'wire_angle_deg' missing (required for plane u: angle of the wire normal from +x)")
+            raise located(path, f"{label} 'wire_angle_deg' missing (required for plane u: angle of the wire normal from +x)")
         return math.radians(_PLANE_ANGLE_DEG[plane])
     try:
         angle = float(text)
     except ValueError:
-        raise located(path, f"header 'wire_angle_deg': {text!r} is not a number") from None
+        raise located(path, f"{label} 'wire_angle_deg': {text!r} is not a number") from None
     if not math.isfinite(angle):
-        raise located(path, f"header 'wire_angle_deg': {text!r} is not a finite number")
+        raise located(path, f"{label} 'wire_angle_deg': {text!r} is not a finite number")
     if plane in _PLANE_ANGLE_DEG and not math.isclose(angle, _PLANE_ANGLE_DEG[plane], abs_tol=1e-9):
-        raise located(path, f"header 'wire_angle_deg': {angle:g} contradicts plane {plane} "
+        raise located(path, f"{label} 'wire_angle_deg': {angle:g} contradicts plane {plane} "
                             f"(expected {_PLANE_ANGLE_DEG[plane]:g}, or plane u)")
     return math.radians(angle)
 
