@@ -123,9 +123,6 @@ READINGS_PER_ROW_GROUP = 262_144
 
 _NS_PER_DAY = 86_400 * 10**9
 _TS = pa.timestamp("ns", tz="UTC")
-_SKIP_PREFIXES = (".", "~")
-_SKIP_SUFFIXES = (".part", ".tmp", ".swp")
-_IMAGE_SUFFIXES = (".png", ".tif", ".tiff", ".npy")
 
 # unit of a column from the suffix of its name (SI names carry their unit)
 _UNIT_SUFFIXES = (
@@ -482,8 +479,6 @@ def _readers() -> Any:
 
     try:
         package = importlib.import_module("diagnostics.readers")
-        for name in ("bpm", "slow", "wire", "screen", "scan"):
-            importlib.import_module(f"diagnostics.readers.{name}")
     except ImportError as exc:  # the readers are part of the package
         raise StoreError(f"the readers cannot be imported: {exc}") from exc
     return package
@@ -737,70 +732,56 @@ def _records_table(records: Sequence[Mapping[str, Any]] | pd.DataFrame, what: st
 
 
 # --------------------------------------------------------------------------- input discovery
-def _skip_name(name: str) -> bool:
-    return name.startswith(_SKIP_PREFIXES) or name.endswith(_SKIP_SUFFIXES)
+def _input_suffixes(readers: Any) -> set[str]:
+    util = readers._util
+    return {*util.CSV_SUFFIXES, *util.PARQUET_SUFFIXES, *readers.screen.IMAGE_SUFFIXES}
 
 
-def _auxiliary_files(files: Iterable[Path]) -> set[Path]:
-    """Image sidecars (``<stem>.json`` next to an image) and the dark frames they name.
-
-    They are part of an image input, not inputs of their own.
-    """
-    files = list(files)
-    by_dir: dict[Path, set[str]] = {}
-    for f in files:
-        if f.suffix.lower() in _IMAGE_SUFFIXES:
-            by_dir.setdefault(f.parent, set()).add(f.stem)
-    aux: set[Path] = set()
-    for f in files:
-        if f.suffix.lower() != ".json" or f.stem not in by_dir.get(f.parent, set()):
-            continue
-        aux.add(f.resolve())
-        with contextlib.suppress(OSError, ValueError, UnicodeDecodeError):
-            side = json.loads(f.read_text(encoding="utf-8"))
-            dark = side.get("dark") if isinstance(side, dict) else None
-            if isinstance(dark, str) and dark:
-                dark_path = (f.parent / dark).resolve()
-                aux.add(dark_path)
-                aux.add(dark_path.with_suffix(".json").resolve())
-    return aux
+def _referenced_darks(files: Sequence[Path], readers: Any) -> set[Path]:
+    """Dark frames named by any image sidecar among ``files`` (in any folder)."""
+    darks: set[Path] = set()
+    images = {(f.parent, f.stem) for f in files
+              if f.suffix.lower() in readers.screen.IMAGE_SUFFIXES}
+    for folder in {f.parent for f in files}:
+        with contextlib.suppress(OSError):
+            for side in folder.glob("*.json"):
+                if (folder, side.stem) not in images:
+                    continue
+                with contextlib.suppress(OSError, ValueError, UnicodeDecodeError,
+                                         RecursionError):
+                    doc = json.loads(side.read_text(encoding="utf-8-sig"))
+                    if isinstance(doc, dict) and isinstance(doc.get("dark"), str):
+                        darks.add((folder / doc["dark"]).resolve())
+    return darks
 
 
 def collect_inputs(paths: Iterable[str | Path]) -> list[Path]:
-    """The inputs under ``paths``: files, and scan folders (a folder with ``scan.json``).
+    """The inputs under ``paths``, each once, in order.
 
-    Folders are walked recursively in sorted order.  A scan folder is one input
-    (its files are not inputs of their own); image sidecars and dark frames named
-    by a sidecar are skipped, as are hidden and partial files (``.*``, ``~*``,
-    ``*.part``, ``*.tmp``).  A path named explicitly is always returned, even if
-    it does not exist (ingest then reports it).
+    Walking uses :func:`diagnostics.readers.iter_inputs`: folders recursively in
+    sorted order, a scan folder (with ``scan.json``) as one input, image
+    sidecars, the dark frames they name and hidden or partial files skipped.
+    Below a folder, this also skips dark frames that a sidecar in another
+    folder names (``"dark": "darks/SCR-01_dark.png"``) and files whose suffix no
+    reader takes (``README.md``, notes): they are no measurement.  A path named
+    explicitly is always returned, even if it does not exist (ingest reports it).
     """
-    explicit: list[Path] = []
-    walked: list[Path] = []
+    readers = _readers()
+    suffixes = _input_suffixes(readers)
+    out: list[Path] = []
+    seen: set[Path] = set()
     for raw in paths:
-        path = Path(raw)
-        if not path.is_dir():
-            explicit.append(path)
-            continue
-        if (path / "scan.json").is_file():
-            explicit.append(path)
-            continue
-        for dirpath, dirnames, filenames in os.walk(path):
-            here = Path(dirpath)
-            dirnames[:] = sorted(d for d in dirnames if not _skip_name(d))
-            scans = [d for d in dirnames if (here / d / "scan.json").is_file()]
-            walked.extend(here / d for d in scans)
-            dirnames[:] = [d for d in dirnames if d not in scans]
-            walked.extend(here / f for f in sorted(filenames) if not _skip_name(f))
-    aux = _auxiliary_files(p for p in walked if p.is_file())
-    out, seen = [], set()
-    for p in explicit + sorted(walked, key=lambda q: str(q)):
-        if p in walked and p.resolve() in aux:
-            continue
-        key = p.resolve() if p.exists() else p
-        if key not in seen:
-            seen.add(key)
-            out.append(p)
+        raw = Path(raw)
+        found = list(readers.iter_inputs([raw]))
+        if raw.is_dir() and not readers.scan.is_scan_folder(raw):
+            darks = _referenced_darks([f for f in found if f.is_file()], readers)
+            found = [f for f in found if f.is_dir() or (
+                f.suffix.lower() in suffixes and f.resolve() not in darks)]
+        for p in found:
+            key = p.resolve() if p.exists() else p
+            if key not in seen:
+                seen.add(key)
+                out.append(p)
     return out
 
 
@@ -1175,16 +1156,10 @@ class Store:
                 "reader_version": reader_version, "code_version": diagnostics.__version__}
         readers = _readers()
         tb = None
+        kind = readers.detect_kind(path) or kind
         try:
-            if kind is None:
-                kind = readers.detect_kind(path)
-            if kind == "scans" and path.is_dir() and not (path / "scan.json").is_file():
-                raise InputError(f"{shown}: folder has no scan.json (expected a scan folder)")
-            if kind is None:
-                raise InputError(f"{shown}: not a known input (expected a wire profile CSV/"
-                                 "Parquet, a BPM or slow-channel table, an image with its JSON"
-                                 " sidecar, or a scan folder with scan.json)")
-            outputs, rows = self._read_and_write(kind, path, sha, readers)
+            kind, data = readers.read_any(path)
+            outputs, rows = self._write_data(kind, data, sha, shown)
         except InputError as exc:
             reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         except Exception as exc:  # a reader bug must not stop a batch; keep its traceback
@@ -1205,24 +1180,19 @@ class Store:
                                         time=utc_now_iso(), **meta)
         return IngestOutcome(shown, kind, "quarantined", sha, 0, reason, ())
 
-    def _read_and_write(self, kind: str, path: Path, sha: str, readers: Any) -> tuple[list[Path], int]:
-        source = str(path)
+    def _write_data(self, kind: str, data: Any, sha: str, source: str) -> tuple[list[Path], int]:
+        """Write what a reader returned; ``(files, rows)``."""
         if kind == "bpm":
-            df = readers.bpm.read_bpm(path)
-            return self.write_bpm(df, sha256=sha, source=source), len(df)
+            return self.write_bpm(data, sha256=sha, source=source), len(data)
         if kind == "slow":
-            df = readers.slow.read_slow(path)
-            return self.write_slow(df, sha256=sha, source=source), len(df)
+            return self.write_slow(data, sha256=sha, source=source), len(data)
         if kind == "profiles":
-            prof = readers.wire.read_profile(path)
-            return self.write_profiles([prof], sha256=sha, source=source), 1
+            return self.write_profiles([data], sha256=sha, source=source), 1
         if kind == "frames":
-            frame = readers.screen.read_frame(path)
-            return self.write_frames([frame], sha256=sha, source=source), 1
+            return self.write_frames([data], sha256=sha, source=source), 1
         if kind == "scans":
-            spec = readers.scan.read_scan(path)
-            return self.write_scan(spec, sha256=sha, source=source), len(spec.steps)
-        raise InputError(f"{path}: unknown kind {kind!r} (expected one of {', '.join(STORE_KINDS)})")
+            return self.write_scan(data, sha256=sha, source=source), len(data.steps)
+        raise InputError(f"{source}: unknown kind {kind!r} (expected one of {', '.join(STORE_KINDS)})")
 
     def _quarantine(self, path: Path, sha: str, kind: str | None, reason: str,
                     tb: str | None, meta: Mapping[str, Any]) -> Path:
