@@ -45,6 +45,8 @@ import numpy as np
 import pandas as pd
 
 from diagnostics import __version__
+from diagnostics import emittance as _emittance
+from diagnostics import profiles as _profiles
 from diagnostics.errors import InputError
 from diagnostics.results import merge_flags, to_record
 
@@ -52,13 +54,13 @@ from diagnostics.results import merge_flags, to_record
 PIPELINE_KINDS = ("profiles", "frames", "scans", "orbit")
 
 #: Profile models offered by :func:`diagnostics.profiles.analyze_profile`.
-PROFILE_MODELS = ("gaussian", "halo", "super_gaussian")
+PROFILE_MODELS = _profiles.PROFILE_MODELS
 
 #: Baselines of the profile fit.
-PROFILE_BASELINES = ("constant", "linear")
+PROFILE_BASELINES = _profiles.BASELINES
 
 #: Emittance reconstruction methods of :func:`diagnostics.emittance.analyze_scan`.
-EMITTANCE_METHODS = ("thick", "thin")
+EMITTANCE_METHODS = _emittance.EMITTANCE_METHODS
 
 #: How profiles are fitted: ``single`` calls ``analyze_profile`` per profile,
 #: ``batch`` uses ``fit_profiles_batch`` on all same-length profiles of one stored
@@ -83,6 +85,8 @@ class AnalysisOptions:
         Emittance method, one of :data:`EMITTANCE_METHODS`.
     bootstrap : int
         Bootstrap samples for the emittance uncertainty (0: covariance only).
+    seed : int
+        Seed of the bootstrap's random generator, so a rerun gives the same rows.
     fitter : str
         Profile fitter, one of :data:`PROFILE_FITTERS`.
     """
@@ -92,6 +96,7 @@ class AnalysisOptions:
     window_n_sigma: float = 4.0
     method: str = "thick"
     bootstrap: int = 0
+    seed: int = 0
     fitter: str = "auto"
 
     def __post_init__(self) -> None:
@@ -104,6 +109,8 @@ class AnalysisOptions:
             raise InputError(f"analysis options: window_n_sigma must be a positive number, got {self.window_n_sigma!r}")
         if not isinstance(self.bootstrap, int) or self.bootstrap < 0:
             raise InputError(f"analysis options: bootstrap must be a whole number >= 0, got {self.bootstrap!r}")
+        if not isinstance(self.seed, int) or self.seed < 0:
+            raise InputError(f"analysis options: seed must be a whole number >= 0, got {self.seed!r}")
         if self.fitter == "batch" and self.model != "gaussian":
             raise InputError(f"analysis options: fitter 'batch' supports model 'gaussian' only, got model {self.model!r}")
         object.__setattr__(self, "window_n_sigma", float(self.window_n_sigma))
@@ -317,12 +324,6 @@ def failed_record(key: str, key_value: str, *, reason: str, **extra: Any) -> dic
 # --------------------------------------------------------------------------------------
 
 
-def _profiles_module():
-    from diagnostics import profiles
-
-    return profiles
-
-
 def analyze_profile_items(items: Sequence[tuple[str, Any, Mapping[str, Any]]],
                           options: AnalysisOptions | None = None) -> list[dict[str, Any]]:
     """Analyse ``(profile_id, Profile, extra)`` items; one record per item, in order.
@@ -331,7 +332,7 @@ def analyze_profile_items(items: Sequence[tuple[str, Any, Mapping[str, Any]]],
     batch fitter, profiles with the same number of points are fitted together.
     """
     options = options or AnalysisOptions()
-    profiles = _profiles_module()
+    profiles = _profiles
     use_batch = options.fitter == "batch" or (
         options.fitter == "auto" and options.model == "gaussian" and hasattr(profiles, "fit_profiles_batch")
     )
@@ -344,7 +345,8 @@ def analyze_profile_items(items: Sequence[tuple[str, Any, Mapping[str, Any]]],
             positions = np.stack([np.asarray(items[i][1].position_m, dtype=float) for i in idx])
             signals = np.stack([np.asarray(items[i][1].signal, dtype=float) for i in idx])
             try:
-                results = profiles.fit_profiles_batch(positions, signals, baseline=options.baseline)
+                results = profiles.fit_profiles_batch(positions, signals, baseline=options.baseline,
+                                                      window_n_sigma=options.window_n_sigma)
             except (ValueError, FloatingPointError, np.linalg.LinAlgError, RuntimeError) as exc:
                 results = [None] * len(idx)
                 reason = f"batch fit raised {type(exc).__name__}: {exc}"
@@ -400,13 +402,12 @@ def analyze_scan_spec(scan_id: str | None, spec: Any, options: AnalysisOptions |
 
     ``provisional`` defaults to ``not spec.complete``.
     """
-    from diagnostics import emittance
-
+    emittance = _emittance
     options = options or AnalysisOptions()
     provisional = (not spec.complete) if provisional is None else provisional
     try:
         res = emittance.analyze_scan(spec, method=options.method, bootstrap=options.bootstrap,
-                                     profile_model=options.model)
+                                     profile_model=options.model, seed=options.seed)
     except (ValueError, FloatingPointError, np.linalg.LinAlgError, RuntimeError) as exc:
         rec = failed_record("scan_id", scan_id, reason=f"analysis raised {type(exc).__name__}: {exc}",
                             scan_name=spec.name, timestamp=_iso(spec.timestamp), n_steps=len(spec.steps),
@@ -437,39 +438,66 @@ def _summarise(kind: str, records: Sequence[Mapping[str, Any]], paths: tuple[str
     return KindSummary(kind, analysed=len(records), flagged=flagged, failed=failed, paths=paths, message=message)
 
 
-def _index_items(index: pd.DataFrame, ids: Iterable[str] | None) -> pd.DataFrame:
-    if ids is not None:
-        wanted = {str(i) for i in ids}
-        index = index[index["id"].astype(str).isin(wanted)]
-    return index
-
-
 def _extra(row: Mapping[str, Any]) -> dict[str, Any]:
     return {"scan": _clean(row.get("scan")), "step": _clean(row.get("step"))}
 
 
+#: Span of one read when frames are analysed over a long window (bounds memory:
+#: an hour of one-per-minute 640x480 frames is about 20 MB of pixels).
+FRAME_READ_SPAN = pd.Timedelta("1h")
+
+
+def _stored_items(store: Any, kind: str, *, ids: Iterable[str] | None, start: Any, end: Any,
+                  devices: Sequence[str] | None) -> list[tuple[str, Any, dict[str, Any]]]:
+    """Index rows and domain objects of one window, paired (both are sorted by time, id)."""
+    index_of = store.profile_index if kind == "profiles" else store.frame_index
+    read = store.read_profiles if kind == "profiles" else store.read_frames
+    wanted = None if ids is None else {str(i) for i in ids}
+    for _attempt in range(5):
+        index = index_of(start=start, end=end, devices=devices)
+        objects = read(start=start, end=end, devices=devices)
+        if len(index) == len(objects):
+            break
+        # the live service stored more between the two reads: read the window again
+    else:
+        raise RuntimeError(f"{kind}: the store kept changing while reading {start}..{end}")
+    items = []
+    for row, obj in zip(index.to_dict("records"), objects, strict=True):
+        if wanted is None or str(row["id"]) in wanted:
+            items.append((str(row["id"]), obj, _extra(row)))
+    return items
+
+
+def _windows(store: Any, kind: str, start: Any, end: Any, span: pd.Timedelta) -> list[tuple[Any, Any]]:
+    """``[start, end)`` cut into pieces of ``span`` (the stored time range when open)."""
+    rng = store.time_range(kind)
+    if rng is None:
+        return []
+    t0 = rng[0] if start is None else max(_utc(start), rng[0])
+    t1 = (rng[1] + pd.Timedelta(1, "ns")) if end is None else min(_utc(end), rng[1] + pd.Timedelta(1, "ns"))
+    out = []
+    while t0 < t1:
+        out.append((t0, min(t0 + span, t1)))
+        t0 = t0 + span
+    return out
+
+
 def profile_items(store: Any, *, ids: Iterable[str] | None = None, start: Any = None, end: Any = None,
                   devices: Sequence[str] | None = None) -> list[tuple[str, Any, dict[str, Any]]]:
-    """``(profile_id, Profile, extra)`` for the stored profiles selected by ids or window."""
-    if ids is not None and start is None and end is None and devices is None:
-        return [(str(i), store.read_profile(i), {}) for i in ids]
-    index = _index_items(store.profile_index(start=start, end=end, devices=devices), ids)
-    return [(str(row["id"]), store.read_profile(row["id"]), _extra(row)) for row in index.to_dict("records")]
+    """``(profile_id, Profile, {"scan", "step"})`` for stored profiles of a window (optionally by id)."""
+    return _stored_items(store, "profiles", ids=ids, start=start, end=end, devices=devices)
 
 
 def frame_items(store: Any, *, ids: Iterable[str] | None = None, start: Any = None, end: Any = None,
                 devices: Sequence[str] | None = None) -> list[tuple[str, Any, dict[str, Any]]]:
-    """``(frame_id, Frame, extra)`` for the stored frames selected by ids or window."""
-    if ids is not None and start is None and end is None and devices is None:
-        return [(str(i), store.read_frame(i), {}) for i in ids]
-    index = _index_items(store.frame_index(start=start, end=end, devices=devices), ids)
-    return [(str(row["id"]), store.read_frame(row["id"]), _extra(row)) for row in index.to_dict("records")]
+    """``(frame_id, Frame, {"scan", "step"})`` for stored frames of a window (optionally by id)."""
+    return _stored_items(store, "frames", ids=ids, start=start, end=end, devices=devices)
 
 
 def analyze_profiles(store: Any, *, ids: Iterable[str] | None = None, start: Any = None, end: Any = None,
                      devices: Sequence[str] | None = None, options: AnalysisOptions | Mapping | None = None,
                      version: str | None = None, write: bool = True) -> list[dict[str, Any]]:
-    """Analyse stored profiles (by ``ids`` or time window) and write their result rows.
+    """Analyse stored profiles of a time window (optionally only ``ids``) and write their rows.
 
     Parameters
     ----------
@@ -477,7 +505,7 @@ def analyze_profiles(store: Any, *, ids: Iterable[str] | None = None, start: Any
     ids : iterable of str, optional
         Profile ids (``Store.profile_index()["id"]``); default all in the window.
     start, end : anything ``pandas.Timestamp`` takes, optional
-        Time window (naive means UTC).
+        Time window ``[start, end)`` (naive means UTC); default everything.
     devices : sequence of str, optional
     options : AnalysisOptions or mapping, optional
     version : str, optional
@@ -488,7 +516,7 @@ def analyze_profiles(store: Any, *, ids: Iterable[str] | None = None, start: Any
     Returns
     -------
     list of dict
-        The result rows, one per profile.
+        The result rows, one per profile, in stored order (time, id).
     """
     options = AnalysisOptions.from_mapping(options)
     items = profile_items(store, ids=ids, start=start, end=end, devices=devices)
@@ -500,14 +528,20 @@ def analyze_profiles(store: Any, *, ids: Iterable[str] | None = None, start: Any
 def analyze_frames(store: Any, *, ids: Iterable[str] | None = None, start: Any = None, end: Any = None,
                    devices: Sequence[str] | None = None, options: AnalysisOptions | Mapping | None = None,
                    version: str | None = None, write: bool = True) -> list[dict[str, Any]]:
-    """Analyse stored screen images (by ``ids`` or time window) and write their result rows.
+    """Analyse stored screen images of a time window and write their rows (``results/frames``).
 
-    Parameters are those of :func:`analyze_profiles`; rows go to ``results/frames``.
+    Parameters are those of :func:`analyze_profiles`.  The window is read an hour
+    (:data:`FRAME_READ_SPAN`) at a time and each hour's rows are written as they
+    are done, so memory stays bounded on a long archive.
     """
     options = AnalysisOptions.from_mapping(options)
-    items = frame_items(store, ids=ids, start=start, end=end, devices=devices)
-    records = analyze_frame_items(items, options)
-    _write(store, "frames", records, options, version or default_version(options), write)
+    version = version or default_version(options)
+    records: list[dict[str, Any]] = []
+    for t0, t1 in _windows(store, "frames", start, end, FRAME_READ_SPAN):
+        items = frame_items(store, ids=ids, start=t0, end=t1, devices=devices)
+        chunk = analyze_frame_items(items, options)
+        _write(store, "frames", chunk, options, version, write)
+        records.extend(chunk)
     return records
 
 
@@ -528,7 +562,7 @@ def _scan_table(store: Any, start: Any, end: Any) -> pd.DataFrame:
 
 
 def _scan_id_column(scans: pd.DataFrame) -> str:
-    for name in ("id", "scan_id", "scan"):
+    for name in ("scan_id", "id", "scan"):
         if name in scans.columns:
             return name
     raise KeyError("list_scans() has no id column")
@@ -676,34 +710,67 @@ def provisional_scan_id(spec: Any) -> str:
 PER_ITEM_KINDS = ("profiles", "frames", "scans")
 
 
-def _source_index(store: Any, kind: str, sha256: str) -> pd.DataFrame:
-    """Index rows (id, scan, step, ...) of the raw rows a stored input gave."""
-    index = store.profile_index() if kind == "profiles" else store.frame_index()
-    if "sha256" in index.columns:
-        return index[index["sha256"] == sha256]
-    raise KeyError(f"{kind} index has no sha256 column")
-
-
-def _existing_keys(store: Any, kind: str, key: str, version: str) -> set[str]:
-    try:
-        table = store.read_results(kind, version=version)
-    except (KeyError, ValueError, FileNotFoundError):
+def _existing_keys(store: Any, kind: str, key: str, version: str, start: Any, end: Any) -> set[str]:
+    """Keys of rows already stored for ``version`` in a window (empty when none)."""
+    versions = store.result_versions(kind)
+    if version not in set(versions.get("version", ())):
         return set()
-    if table is None or key not in getattr(table, "columns", ()):
+    table = store.read_results(kind, start=start, end=end, version=version)
+    if key not in table.columns:
         return set()
     return set(table[key].astype(str))
+
+
+def _read_input(path: str) -> tuple[str, Any]:
+    from diagnostics import readers
+
+    return readers.read_any(path)
+
+
+def ingested_items(store: Any, kind: str, outcomes: Sequence[Any]) -> list[tuple[str, Any, dict[str, Any]]]:
+    """``(id, object, extra)`` for the profiles or frames that ingest outcomes stored.
+
+    The objects are read again from the inputs with the same readers the store
+    used (the store's round trip is bit-identical), which costs a few ms,
+    whereas finding one row among thousands of small stored files costs far
+    more; the ids come from the store's index over the batch's time window,
+    matched on the input's sha256.
+    """
+    objects: dict[str, list[Any]] = {}
+    for outcome in outcomes:
+        _kind, obj = _read_input(outcome.path)
+        objects.setdefault(outcome.sha256, []).extend(obj if isinstance(obj, list) else [obj])
+    if not objects:
+        return []
+    times = [_utc(o.timestamp) for objs in objects.values() for o in objs]
+    index_of = store.profile_index if kind == "profiles" else store.frame_index
+    index = index_of(start=min(times), end=max(times) + pd.Timedelta(1, "ns"))
+    index = index[index["sha256"].isin(list(objects))]
+    items = []
+    for sha, group in index.groupby("sha256", sort=False):
+        rows = group.sort_values("id").to_dict("records")
+        objs = objects[sha]
+        if len(rows) != len(objs):
+            raise RuntimeError(f"{kind}: {len(objs)} item(s) read from the input of sha256 {sha[:16]} but "
+                               f"{len(rows)} stored")
+        # the store numbers an input's items in reading order: <sha16>-<i>
+        rows.sort(key=lambda r: int(str(r["id"]).rsplit("-", 1)[-1]) if str(r["id"]).rsplit("-", 1)[-1].isdigit()
+                  else 0)
+        items.extend((str(r["id"]), o, _extra(r)) for r, o in zip(rows, objs, strict=True))
+    return items
 
 
 def analyze_ingested(store: Any, outcomes: Sequence[Any], *, options: AnalysisOptions | Mapping | None = None,
                      version: str | None = None, skip_existing: bool = False) -> int:
     """Analyse what the given ingest outcomes stored, write the rows; return how many were written.
 
-    Used by the live service after each batch of ingests.  Outcomes whose status
-    is ``stored`` or ``duplicate`` and whose kind is profiles, frames or scans
-    are analysed (a duplicate is analysed again because a crash may have come
-    between its ingest and its results).  With ``skip_existing``, rows whose key
-    is already among the results of ``version`` are not written again (the
-    restart path, which makes the service exactly-once for results too).
+    Used by the live service after each batch of ingests, while the inputs are
+    still in its work folder.  Outcomes whose status is ``stored`` or
+    ``duplicate`` and whose kind is profiles, frames or scans are analysed (a
+    duplicate again too, because a crash may have come between its ingest and
+    its results).  With ``skip_existing``, rows whose key is already among the
+    results of ``version`` are left out (the restart path: exactly-once results).
+    One result file per kind is written for the whole batch.
     """
     options = AnalysisOptions.from_mapping(options)
     version = version or default_version(options)
@@ -719,31 +786,28 @@ def analyze_ingested(store: Any, outcomes: Sequence[Any], *, options: AnalysisOp
             records = []
             for outcome in group:
                 for scan_id in scan_ids_of_outcome(store, outcome):
-                    records.append(analyze_scan_spec(scan_id, store.load_scan(scan_id), options))
+                    records.append(analyze_scan_spec(scan_id, store.load_scan(scan_id), options, provisional=False))
         else:
             key = "profile_id" if kind == "profiles" else "frame_id"
-            ids = []
-            for outcome in group:
-                ids.extend(str(i) for i in _source_index(store, kind, outcome.sha256)["id"])
-            items = (profile_items if kind == "profiles" else frame_items)(store, ids=ids)
+            items = ingested_items(store, kind, group)
             records = (analyze_profile_items if kind == "profiles" else analyze_frame_items)(items, options)
         if skip_existing and records:
-            have = _existing_keys(store, kind, key, version)
-            records = [r for r in records if str(r.get(key)) not in have]
+            times = [pd.Timestamp(r["timestamp"]) for r in records if r.get("timestamp")]
+            if times:
+                have = _existing_keys(store, kind, key, version, min(times), max(times) + pd.Timedelta(1, "ns"))
+                records = [r for r in records if str(r.get(key)) not in have]
         _write(store, kind, records, options, version, True)
         written += len(records)
     return written
 
 
 def scan_ids_of_outcome(store: Any, outcome: Any) -> list[str]:
-    """Scan ids stored by one ingest outcome of a scan folder."""
+    """Scan ids stored by one ingest outcome of a scan folder (matched on its sha256)."""
     scans = store.list_scans()
     if len(scans) == 0:
         return []
     col = _scan_id_column(scans)
-    if "sha256" in scans.columns:
-        return [str(v) for v in scans.loc[scans["sha256"] == outcome.sha256, col]]
-    raise KeyError("list_scans() has no sha256 column")
+    return [str(v) for v in scans.loc[scans["sha256"] == outcome.sha256, col]]
 
 
 def analyze_store(store: Any, *, kinds: Sequence[str] = PIPELINE_KINDS, start: Any = None, end: Any = None,

@@ -64,6 +64,7 @@ import json
 import os
 import shutil
 import signal
+import sqlite3
 import sys
 import threading
 import time
@@ -98,6 +99,9 @@ STATE_NAME = "state.json"
 
 #: Manifest of a claimed unit inside ``.work/<unit>/``.
 UNIT_MANIFEST = ".unit.json"
+
+#: Suffixes of ``.work/<unit>.<status>`` folders: stored and analysed, only to be moved out.
+FINISHED = ("stored", "duplicate", "quarantined")
 
 
 def is_ignored(name: str) -> bool:
@@ -318,6 +322,25 @@ class WatchService:
         self._day = _now_utc().date()
         for sub in (WORK_DIR, DONE_DIR, QUARANTINE_DIR):
             (self.inbox / sub).mkdir(parents=True, exist_ok=True)
+        self._catalog_hold = self._hold_catalog()
+
+    def _hold_catalog(self) -> sqlite3.Connection | None:
+        """Keep one idle connection to the store's catalog open while the service runs.
+
+        SQLite checkpoints and removes the write-ahead log whenever the last
+        connection to a WAL database closes; the store opens a short connection
+        per operation, so without this every ingest pays for a checkpoint (measured
+        here: about 2x the ingest time of a small file).
+        """
+        path = Path(self.store.root) / "catalog.sqlite"
+        if not path.exists():
+            return None
+        try:
+            con = sqlite3.connect(path, timeout=60, check_same_thread=False)
+            con.execute("SELECT 1").fetchall()
+            return con
+        except sqlite3.Error:
+            return None
 
     # ---------------------------------------------------------------- logging / state
     def log(self, message: str) -> None:
@@ -666,6 +689,12 @@ class WatchService:
                 # crashed before the manifest was whole: nothing was moved yet
                 shutil.rmtree(work, ignore_errors=True)
                 continue
+            status = work.suffix.lstrip(".")
+            if status in FINISHED:
+                # stored and analysed before the stop: only the moving out was left
+                self._finish(work, manifest, status)
+                self.stats.files_processed += 1
+                continue
             # finish a claim interrupted between two renames
             self._move_members(work, manifest.get("members", []), manifest.get("darks", []))
             if not any((work / m).exists() for m in manifest.get("members", [])):
@@ -737,7 +766,12 @@ class WatchService:
                 self.log(f"error: {self.stats.last_error}")
                 return 0
         for work, manifest, outcome in handled:
-            self._finish(work, manifest, getattr(outcome, "status", "stored"))
+            status = getattr(outcome, "status", "stored")
+            # mark the unit finished with one atomic rename, so a restart that finds it
+            # only moves it out (its members may already be half moved)
+            finished = work.with_name(f"{work.name}.{status}")
+            os.rename(work, finished)
+            self._finish(finished, manifest, status)
             self.stats.files_processed += 1
         return len(handled)
 
@@ -880,6 +914,8 @@ class WatchService:
         finally:
             if self._observer is not None:
                 self._observer.stop()
+            if self._catalog_hold is not None:
+                self._catalog_hold.close()
             with contextlib.suppress(OSError):
                 self._save_state()
                 self.heartbeat(state="stopped")

@@ -291,6 +291,22 @@ def test_restart_finishes_inputs_left_in_work_exactly_once(tmp_path):
     assert list((inbox / ".work").iterdir()) == []
 
 
+def test_restart_only_moves_out_a_unit_that_was_already_finished(tmp_path):
+    """Killed while moving a stored unit to done/: the restart moves the rest, ingests nothing."""
+    svc, store, inbox = _service(tmp_path, stable_seconds=60)
+    work = inbox / ".work" / "5-half.stored"
+    work.mkdir(parents=True)
+    service.write_json_atomic(work / service.UNIT_MANIFEST, {"kind": "frame", "rel": "g.png",
+                                                            "members": ["g.png", "g.json"], "darks": []})
+    (inbox / "done").mkdir(exist_ok=True)
+    (inbox / "done" / "g.png").write_bytes(b"moved before the kill")
+    (work / "g.json").write_bytes(b"{}")
+    svc.recover()
+    assert store.ingested == []
+    assert (inbox / "done" / "g.json").exists() and (inbox / "done" / "g.png").exists()
+    assert list((inbox / ".work").iterdir()) == []
+
+
 def test_heartbeat_is_written_every_cycle_and_read_back(tmp_path):
     svc, store, inbox = _service(tmp_path, stable_seconds=60)
     assert read_heartbeat(store.root) is None
