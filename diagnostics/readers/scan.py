@@ -331,7 +331,7 @@ def _step(ctx: _Context, kind: str, monitors: tuple[Monitor, ...], index: int, v
         names = [m.name for m in monitors]
         if spec["monitor"] not in names:
             raise ctx.error(f"{where}.monitor", f"unknown monitor {spec['monitor']!r}"
-                                                f"{_util.did_you_mean(str(spec['monitor']), names)} (expected one of {names})")
+                                                f"{_util.did_you_mean(str(spec['monitor']), names)} (expected one of {', '.join(names)})")
         monitor = monitors[names.index(spec["monitor"])]
         values["monitor"] = monitor.name
     else:

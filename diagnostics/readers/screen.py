@@ -173,7 +173,7 @@ def read_pixels(path: Path) -> np.ndarray:
         pixels = pixels.astype(pixels.dtype.newbyteorder("="))
     if pixels.dtype.kind == "f" and not np.isfinite(pixels).all():
         row, col = np.argwhere(~np.isfinite(pixels))[0]
-        raise located(p, f"pixel (x={col}, y={row}) is {pixels[row, col]!r} (expected finite values)")
+        raise located(p, f"pixel (x={col}, y={row}) is {float(pixels[row, col])!r} (expected finite values)")
     return pixels
 
 
@@ -270,12 +270,11 @@ def _bit_depth(sidecar: Path, meta: dict[str, Any], pixels: np.ndarray) -> int |
 
 def _check_bit_depth(where: Path, pixels: np.ndarray, depth: int) -> None:
     top = 2**depth - 1
-    peak = pixels.max()
-    low = pixels.min()
-    if peak > top or low < 0:
-        value, (row, col) = (peak, np.argwhere(pixels == peak)[0]) if peak > top else (low, np.argwhere(pixels == low)[0])
-        raise located(where, f"pixel (x={col}, y={row}) = {value} lies outside 0..{top} "
-                             f"of bit_depth {depth} (expected a matching bit_depth)")
+    if pixels.max() <= top and pixels.min() >= 0:
+        return
+    row, col = np.argwhere((pixels > top) | (pixels < 0))[0]
+    raise located(where, f"pixel (x={col}, y={row}) = {pixels[row, col]} lies outside 0..{top} of bit_depth "
+                         f"{depth} (maximum {pixels.max()}; expected a matching bit_depth)")
 
 
 def _roi(sidecar: Path, meta: dict[str, Any], shape: tuple[int, ...]) -> tuple[int, int, int, int] | None:
