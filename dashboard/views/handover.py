@@ -1,0 +1,5 @@
+"""Placeholder page."""
+
+import streamlit as st
+
+st.title("handover")

@@ -1,0 +1,320 @@
+"""Shift: the state of the beam over the shift at a glance.
+
+Headline numbers first (latest emittance per plane, worst orbit drift, steps,
+out-of-limit events), then where the data stands (last reading per source, the
+watch service), then the trends with events marked.  While ``beamdiag watch``
+writes a fresh heartbeat, the live panels rerun on their own.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import plotly.graph_objects as go
+import streamlit as st
+from plotly.subplots import make_subplots
+
+from dashboard import _data, _ui
+
+#: Refresh intervals of the live panels while the watch service runs, seconds.
+LIVE_HEADLINE_S = 10
+LIVE_TRENDS_S = 60
+#: How often the page looks for an orbit analysis that is still running, seconds.
+POLL_S = 2
+#: Largest number of buckets in the drift plot (24 BPMs x 2 planes of lines).
+DRIFT_POINTS = 600
+
+#: Raw kinds shown under "last data", with operator names.
+SOURCES = {"bpm": "BPMs", "slow": "Slow channels", "profiles": "Wire scans", "frames": "Screens",
+           "scans": "Quad scans"}
+
+
+def latest_scan_result(root: str, stamp: str, window: _data.Window) -> pd.Series | None:
+    """The newest stored scan result up to the window's end."""
+    res = _data.results(root, stamp, "scans")
+    if res.empty or "timestamp" not in res:
+        return None
+    res = res[pd.to_datetime(res["timestamp"], utc=True) < window.end]
+    return None if res.empty else res.iloc[-1]
+
+
+def worst_drift(report) -> object | None:
+    """The BPM-plane summary with the largest |drift| in the report."""
+    summaries = [s for s in report.summaries if _ui.finite(s.max_abs_drift_m)]
+    return max(summaries, key=lambda s: abs(s.max_abs_drift_m)) if summaries else None
+
+
+def headline(root: str, waiting: bool = False) -> None:
+    stamp = _data.stamp(root)
+    window = _ui.current_window(root, stamp)
+    if window is None:
+        return
+    cols = st.columns(5)
+    row = latest_scan_result(root, stamp, window)
+    for col, plane in zip(cols[:2], ("x", "y"), strict=True):
+        with col:
+            if row is None:
+                _ui.big_number(f"Emittance {plane} (norm.)", "–", sub="no quad scan yet")
+                continue
+            value, err = row.get(f"{plane}_norm_emittance_m_rad"), row.get(f"{plane}_norm_emittance_err_m_rad")
+            geo, geo_err = row.get(f"{plane}_emittance_m_rad"), row.get(f"{plane}_emittance_err_m_rad")
+            flags = _ui.parse_flags(row.get(f"{plane}_flags")) + _ui.parse_flags(row.get("flags"))
+            flags = tuple(dict.fromkeys(flags))
+            _ui.big_number(
+                f"Emittance {plane} (norm.)",
+                _ui.fmt_pm(value, err, _ui.MM_MRAD_PER_M_RAD, "mm mrad"),
+                help=(f"Normalised rms emittance {value!r} m rad ± {err!r}; geometric "
+                      f"{_ui.fmt_pm(geo, geo_err, 1e9, 'nm rad')}. Scan {row.get('scan_name')}."),
+                sub=f"{row.get('scan_name', '')} · {_ui.fmt_time(row.get('timestamp'))}"
+                    + (f" · ⚠ {', '.join(flags)}" if flags else ""),
+            )
+    answer = _data.orbit_report(root, stamp, window.key)
+    if waiting and answer.ready:
+        st.rerun()  # the analysis has arrived: redraw the whole page with it
+    report = answer.report
+    if report is None:
+        note = "analysing the orbit …" if not answer.ready else "no BPM readings in the window"
+        for col, label in zip(cols[2:], ("Worst orbit drift", "Orbit steps", "Out-of-limit events"), strict=True):
+            with col:
+                _ui.big_number(label, "…" if not answer.ready else "–", sub=note)
+    else:
+        worst = worst_drift(report)
+        steps = report.steps
+        stale = " · updating …" if answer.updating else ""
+        with cols[2]:
+            if worst is None:
+                _ui.big_number("Worst orbit drift", "–", sub="no drift measured")
+            else:
+                _ui.big_number("Worst orbit drift", f"{worst.max_abs_drift_m * _ui.UM_PER_M:.1f} µm",
+                               help=f"Largest |bucket mean − reference| = {worst.max_abs_drift_m!r} m; "
+                                    f"limit {report.limits.drift_limit_m * _ui.UM_PER_M:g} µm.",
+                               sub=f"{worst.bpm} {worst.plane} · limit "
+                                   f"{report.limits.drift_limit_m * _ui.UM_PER_M:g} µm{stale}")
+        with cols[3]:
+            bpms = sorted({b for b, _, _ in steps})
+            _ui.big_number("Orbit steps", f"{len(steps)}",
+                           help="Sudden position changes found by the step detector, per BPM and plane.",
+                           sub=(f"on {len(bpms)} BPMs, first {_ui.fmt_time(steps[0][2].time)[11:19]}"
+                                if steps else "none in the window") + stale)
+        with cols[4]:
+            losses = len(report.loss_events)
+            _ui.big_number("Out-of-limit events", f"{len(report.violations)}",
+                           help="Intervals in which a BPM plane exceeded the drift or jitter limit.",
+                           sub=f"{len(report.out_of_limit_bpms)} BPMs · {losses} beam-loss event"
+                               f"{'' if losses == 1 else 's'}{stale}")
+    status(root, stamp)
+
+
+def status(root: str, stamp: str) -> None:
+    """Last data per source, the watch service and quarantined inputs (second row)."""
+    seen = _data.last_seen(root, stamp)
+    cols = st.columns(len(SOURCES) + 2)
+    for col, (kind, label) in zip(cols, SOURCES.items(), strict=False):
+        ts = seen.get(kind)
+        col.metric(f"Last: {label}", _ui.fmt_age(ts) if ts is not None else "never",
+                   help=f"Newest {kind} timestamp in the store: {_ui.fmt_time(ts)}")
+    beat = _data.heartbeat(root)
+    if beat is None:
+        cols[-2].metric("Watch service", "not running", help="No heartbeat file from `beamdiag watch`.")
+    else:
+        fresh = _data.heartbeat_is_fresh(beat)
+        state = beat.get("state", "?")
+        cols[-2].metric("Watch service", f"{state}" if fresh else f"{state} (stale)",
+                        help=(f"Heartbeat {_ui.fmt_time(_data.heartbeat_time(beat))}; "
+                              f"pending {beat.get('pending')}, lag {beat.get('lag_s')} s, "
+                              f"stored {beat.get('stored')}, quarantined {beat.get('quarantined')}."))
+    cols[-1].metric("Quarantined inputs", f"{_data.quarantine_count(root, stamp)}",
+                    help="Input files the store rejected (see `beamdiag ingest` output).")
+
+
+def events_of(root: str, stamp: str, window: _data.Window, report) -> pd.DataFrame:
+    """Steps (one line per distinct time), beam-loss events and scans, for marking trends."""
+    rows = []
+    if report is not None:
+        seen: set[pd.Timestamp] = set()
+        for bpm, plane, step in report.steps:
+            t = _data.utc(step.time).floor("10s")
+            if t not in seen:
+                seen.add(t)
+                rows.append({"time": step.time, "kind": "step", "label": f"step {bpm} {plane}"})
+        for ev in report.loss_events:
+            rows.append({"time": ev.start, "end": ev.end, "kind": "loss",
+                         "label": f"loss {ev.upstream}→{ev.downstream}"})
+    try:
+        scans = _data.list_scans(root, stamp)
+    except Exception:  # no scans table yet
+        scans = pd.DataFrame()
+    for _, sc in scans.iterrows():
+        t = _data.utc(sc["timestamp"])
+        if window.start <= t < window.end:
+            rows.append({"time": t, "kind": "scan", "label": f"scan {sc['name']}"})
+    return pd.DataFrame(rows, columns=["time", "end", "kind", "label"])
+
+
+def trends(root: str) -> None:
+    stamp = _data.stamp(root)
+    window = _ui.current_window(root, stamp)
+    if window is None:
+        return
+    report = _data.orbit_report(root, stamp, window.key).report
+    events = events_of(root, stamp, window, report)
+    left, right = st.columns(2)
+    with left:
+        beam_sizes(root, stamp, window, events)
+    with right:
+        emittance_trend(root, stamp, window, events)
+    left, right = st.columns(2)
+    with left:
+        orbit_drift(root, stamp, window, report, events)
+    with right:
+        temperatures(root, stamp, window, events)
+
+
+def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
+    fig = go.Figure()
+    n = 0
+    prof = _data.results(root, stamp, "profiles", window.key)
+    if not prof.empty and "sigma_m" in prof:
+        for (device, plane), grp in prof.groupby(["device", "plane"], sort=True):
+            n += len(grp)
+            fig.add_trace(go.Scatter(
+                x=pd.to_datetime(grp["timestamp"], utc=True), y=grp["sigma_m"] * _ui.UM_PER_M,
+                error_y=dict(array=grp.get("sigma_err_m", pd.Series(np.nan, index=grp.index)) * _ui.UM_PER_M,
+                             visible=True, thickness=1),
+                mode="markers+lines", name=f"{device} {plane}", marker=dict(size=6),
+                hovertemplate="%{y:.1f} µm<extra>" + f"{device} {plane}</extra>"))
+    frames = _data.results(root, stamp, "frames", window.key)
+    if not frames.empty:
+        for plane in ("x", "y"):
+            col = f"projection_{plane}_sigma_m"
+            if col not in frames:
+                continue
+            for device, grp in frames.groupby("device", sort=True):
+                n += len(grp)
+                fig.add_trace(go.Scatter(
+                    x=pd.to_datetime(grp["timestamp"], utc=True), y=grp[col] * _ui.UM_PER_M,
+                    mode="markers", marker=dict(size=4, symbol="diamond"), name=f"{device} {plane}",
+                    hovertemplate="%{y:.1f} µm<extra>" + f"{device} {plane}</extra>"))
+    st.subheader("Beam sizes")
+    if n == 0:
+        st.caption("No analysed wire scans or screen images in the window.")
+        return
+    _ui.mark_events(fig, events)
+    _ui.base_layout(fig, y_title="rms size σ (µm)", height=340)
+    _ui.plot(fig, key="shift_sizes")
+
+
+def emittance_trend(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
+    st.subheader("Emittance")
+    res = _data.results(root, stamp, "scans", window.key)
+    if res.empty or "x_norm_emittance_m_rad" not in res:
+        st.caption("No quad-scan results in the window.")
+        return
+    fig = go.Figure()
+    t = pd.to_datetime(res["timestamp"], utc=True)
+    for plane, colour in (("x", "#1f77b4"), ("y", "#d62728")):
+        err = res.get(f"{plane}_norm_emittance_err_m_rad")
+        fig.add_trace(go.Scatter(
+            x=t, y=res[f"{plane}_norm_emittance_m_rad"] * _ui.MM_MRAD_PER_M_RAD, mode="markers",
+            marker=dict(size=10, color=colour), name=f"ε{plane} (norm.)",
+            error_y=dict(array=None if err is None else err * _ui.MM_MRAD_PER_M_RAD, visible=True),
+            text=res.get("scan_name"),
+            hovertemplate="%{y:.3f} mm mrad<br>%{text}<extra>" + f"{plane}</extra>"))
+    _ui.mark_events(fig, events)
+    _ui.base_layout(fig, y_title="normalised emittance (mm mrad)", height=340)
+    fig.update_xaxes(range=[window.start, window.end])
+    _ui.plot(fig, key="shift_emittance")
+
+
+def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.DataFrame) -> None:
+    st.subheader("Orbit drift per BPM")
+    bucket = _data.bucket_for(window.duration_s, max_points=DRIFT_POINTS)
+    drift = _data.drift_trend(root, stamp, window.key, bucket)
+    if drift is None:
+        st.caption("No BPM readings in the window.")
+        return
+    times, bpms, dx, dy, tr = drift
+    worst = worst_drift(report) if report is not None else None
+    if worst is None:  # until the analysis is in, highlight the largest drift on the plot
+        both = np.abs(np.stack([dx, dy]))
+        if np.isfinite(both).any():
+            p, _, j = np.unravel_index(np.nanargmax(both), both.shape)
+            highlight = (bpms[j], "xy"[p])
+        else:
+            highlight = None
+    else:
+        highlight = (worst.bpm, worst.plane)
+    fig = make_subplots(rows=2, cols=1, shared_xaxes=True, vertical_spacing=0.08,
+                        subplot_titles=("horizontal x", "vertical y"))
+    for r, (plane, values) in enumerate((("x", dx), ("y", dy)), start=1):
+        for j, bpm in enumerate(bpms):
+            if highlight == (bpm, plane):
+                continue
+            fig.add_trace(go.Scatter(
+                x=times, y=values[:, j] * _ui.UM_PER_M, mode="lines", name=bpm, legendgroup=bpm,
+                showlegend=False, line=dict(width=0.8), opacity=0.5,
+                hovertemplate="%{y:.1f} µm<extra>" + f"{bpm} {plane}</extra>"), row=r, col=1)
+    if highlight is not None:
+        bpm, plane = highlight
+        j = bpms.index(bpm)
+        values = dx if plane == "x" else dy
+        # the band is the min/max of the raw readings in each bucket, on the drift's offset
+        sub = tr[tr["device"] == bpm].set_index("timestamp")
+        offset = (sub[f"{plane}_m_mean"].reindex(times).to_numpy() - values[:, j])
+        _ui.add_envelope(fig, times, values[:, j], sub[f"{plane}_m_min"].reindex(times).to_numpy() - offset,
+                         sub[f"{plane}_m_max"].reindex(times).to_numpy() - offset,
+                         name=f"{bpm} {plane} (largest drift)", colour="#d62728", scale=_ui.UM_PER_M,
+                         unit="µm", row=1 if plane == "x" else 2, col=1)
+    _ui.mark_events(fig, events)
+    _ui.base_layout(fig, height=440)
+    fig.update_yaxes(title="drift (µm)")
+    _ui.plot(fig, key="shift_orbit")
+    st.caption(f"{len(bpms)} BPMs, {bucket} bucket means minus the reference orbit (first "
+               f"{_data.library('orbit').DEFAULT_REFERENCE_MINUTES:g} min); the BPM with the largest "
+               "drift in red with the min/max of its readings.")
+
+
+def temperatures(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
+    st.subheader("Temperatures")
+    slow = _data.read_slow(root, stamp, window.key)
+    if slow.empty:
+        st.caption("No slow-channel readings in the window.")
+        return
+    units = slow.groupby("channel", sort=True)["unit"].first()
+    temps = tuple(ch for ch, u in units.items() if str(u).lower() in ("degc", "°c", "c", "k", "degk"))
+    if not temps:
+        st.caption("No temperature channels in the window.")
+        return
+    tr = _data.trend(root, stamp, "slow", ("value",), window.key, _data.bucket_for(window.duration_s), temps)
+    fig = go.Figure()
+    for ch, grp in tr.groupby("device", sort=True):
+        _ui.add_envelope(fig, grp["timestamp"], grp["value_mean"], grp["value_min"], grp["value_max"],
+                         name=ch, unit=str(units[ch]))
+    _ui.mark_events(fig, events)
+    _ui.base_layout(fig, y_title=f"temperature ({units[temps[0]]})", height=420)
+    _ui.plot(fig, key="shift_temps")
+
+
+def main() -> None:
+    st.title("Shift")
+    ctx = _ui.page_store()
+    if ctx is None:
+        return
+    root, stamp = ctx
+    window = _ui.window_picker(root, stamp)
+    if window is None:
+        _ui.empty_state("The store holds no measurements yet.")
+        return
+    beat = _data.heartbeat(root)
+    live = _data.heartbeat_is_fresh(beat)
+    if live:
+        st.caption(f"● Live: the watch service is running; numbers refresh every {LIVE_HEADLINE_S} s, "
+                   f"trends every {LIVE_TRENDS_S} s.")
+    waiting = not _data.orbit_report(root, stamp, window.key).ready  # starts the analysis
+    every = POLL_S if waiting else (LIVE_HEADLINE_S if live else None)
+    st.fragment(headline, run_every=every)(root, waiting)
+    st.divider()
+    st.fragment(trends, run_every=LIVE_TRENDS_S if live else None)(root)
+
+
+main()
