@@ -1258,10 +1258,10 @@ def _profile_size(profile, *, profile_model: str, size_source: str):
 def _pick_size(res, suffix: str, size_source: str):
     """Pick the fitted sigma or the rms (and their errors) from a profile/image result."""
     flags = tuple(f for f in getattr(res, "flags", ()) if f in FLAGS)
-    if size_source == "rms":
+    if size_source == "rms" and hasattr(res, f"rms{suffix}_m"):
         value = getattr(res, f"rms{suffix}_m", None)
         err = getattr(res, f"rms{suffix}_err_m", None)
-    else:
+    else:  # image sizes are rms moments already
         value = getattr(res, f"sigma{suffix}_m", None)
         err = getattr(res, f"sigma{suffix}_err_m", None)
     usable = value is not None and math.isfinite(value) and value > 0 and "fit_failed" not in flags
