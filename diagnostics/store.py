@@ -473,6 +473,38 @@ def _reader_version() -> str:
                                                           diagnostics.__version__)))
 
 
+def _input_identity(path: Path, readers: Any) -> tuple[str, int, int, list[dict[str, Any]]]:
+    """``(sha256, size, mtime_ns, parts)`` identifying one input by its content.
+
+    A file is its bytes.  A scan folder is :func:`folder_sha256` of its files.  An
+    image is its bytes together with its sidecar's and the dark frame's (so two
+    identical frames with different sidecars, e.g. times, are two inputs).
+    """
+    if path.is_dir():
+        stats = [p.stat() for p in path.rglob("*") if p.is_file()]
+        size = sum(s.st_size for s in stats)
+        mtime = max((s.st_mtime_ns for s in stats), default=path.stat().st_mtime_ns)
+        return folder_sha256(path), size, mtime, [
+            {"path": path, "role": "scan folder", "sha256": None}]
+    st = path.stat()
+    own = file_sha256(path)
+    parts = [{"path": path, "role": "input", "sha256": own}]
+    if path.suffix.lower() in readers.screen.IMAGE_SUFFIXES:
+        side = readers.screen.sidecar_path(path)
+        with contextlib.suppress(OSError, ValueError, RecursionError):
+            parts.append({"path": side, "role": "sidecar", "sha256": file_sha256(side)})
+            doc = json.loads(side.read_text(encoding="utf-8-sig"))
+            if isinstance(doc, dict) and isinstance(doc.get("dark"), str):
+                dark = side.parent / doc["dark"]
+                parts.append({"path": dark, "role": "dark", "sha256": file_sha256(dark)})
+    if len(parts) == 1:
+        return own, st.st_size, st.st_mtime_ns, parts
+    sha = text_sha256("image", *(f"{p['role']}:{p['sha256']}" for p in parts))
+    size = sum(Path(p["path"]).stat().st_size for p in parts)
+    mtime = max(Path(p["path"]).stat().st_mtime_ns for p in parts)
+    return sha, size, mtime, parts
+
+
 def _readers() -> Any:
     """The reader modules (imported on first use: the store works without them)."""
     import importlib
@@ -1129,18 +1161,13 @@ class Store:
         self._check_writable()
         path = Path(path)
         shown = str(path)
+        readers = _readers()
         try:
-            if path.is_dir():
-                sha, kind = folder_sha256(path), "scans"
-                stats = [p.stat() for p in path.rglob("*") if p.is_file()]
-                size = sum(s.st_size for s in stats)
-                mtime_ns = max((s.st_mtime_ns for s in stats), default=path.stat().st_mtime_ns)
-            else:
-                st = path.stat()
-                sha, kind, size, mtime_ns = file_sha256(path), None, st.st_size, st.st_mtime_ns
+            sha, size, mtime_ns, parts = _input_identity(path, readers)
         except OSError as exc:
             reason = f"{shown}: cannot read: {exc.strerror or exc}"
             return IngestOutcome(shown, None, "quarantined", "", 0, reason, ())
+        kind = "scans" if path.is_dir() else None
         reader_version = _reader_version()
         record = self._catalog.ingest_record(sha)
         if record is not None:
@@ -1154,7 +1181,7 @@ class Store:
         mtime = pd.Timestamp(mtime_ns, unit="ns", tz="UTC").isoformat()
         meta = {"sha256": sha, "source": shown, "size": size, "mtime": mtime,
                 "reader_version": reader_version, "code_version": diagnostics.__version__}
-        readers = _readers()
+        files = {"parts": parts}
         tb = None
         kind = readers.detect_kind(path) or kind
         try:
@@ -1172,7 +1199,7 @@ class Store:
                                             outputs=json.dumps(rel), message="",
                                             quarantine_path=None, time=utc_now_iso(), **meta)
             return IngestOutcome(shown, kind, "stored", sha, rows, "", rel)
-        qpath = self._quarantine(path, sha, kind, reason, tb, meta)
+        qpath = self._quarantine(path, sha, kind, reason, tb, meta, files)
         with self._catalog.connect() as con:
             self._catalog.record_ingest(con, kind=kind, status="quarantined", rows=0,
                                         outputs="[]", message=reason,
@@ -1195,8 +1222,12 @@ class Store:
         raise InputError(f"{source}: unknown kind {kind!r} (expected one of {', '.join(STORE_KINDS)})")
 
     def _quarantine(self, path: Path, sha: str, kind: str | None, reason: str,
-                    tb: str | None, meta: Mapping[str, Any]) -> Path:
-        """Copy a rejected input to ``quarantine/<date>/`` with ``<name>.error.json``."""
+                    tb: str | None, meta: Mapping[str, Any], files: Mapping[str, Any]) -> Path:
+        """Copy a rejected input to ``quarantine/<date>/`` with ``<name>.error.json``.
+
+        An image is copied with its sidecar (``<name>.json`` next to the copy) when
+        it has one, so the pair can be retried from the quarantine.
+        """
         folder = self.root / "quarantine" / pd.Timestamp.now(tz="UTC").strftime("%Y-%m-%d")
         folder.mkdir(parents=True, exist_ok=True)
         name = path.name or "input"
@@ -1211,7 +1242,15 @@ class Store:
         else:
             shutil.copy2(path, tmp)
         os.replace(tmp, target)
-        info = {"reason": reason, "kind": kind, "time": utc_now_iso(), **meta}
+        parts = files["parts"]
+        for extra in parts[1:]:  # the image's sidecar
+            if extra["role"] == "sidecar":
+                side_tmp = folder / f".{target.stem}.json.{uuid.uuid4().hex[:12]}.tmp"
+                shutil.copy2(extra["path"], side_tmp)
+                os.replace(side_tmp, target.with_suffix(".json"))
+        info = {"reason": reason, "kind": kind, "time": utc_now_iso(), **meta,
+                "files": [{"path": str(x["path"]), "role": x["role"], "sha256": x["sha256"]}
+                          for x in parts]}
         if tb:
             info["traceback"] = tb
         atomic_write_bytes((json.dumps(info, indent=2) + "\n").encode(),
