@@ -9,7 +9,8 @@ What is computed, per BPM and plane
 -----------------------------------
 reference orbit
     The mean position over a reference window, by default the first
-    ``reference_minutes`` (10 min) of the data; or a saved :class:`ReferenceOrbit`.
+    ``reference_minutes`` (10 min) of the data (the first third of a record
+    shorter than twice that); or a given window; or a saved :class:`ReferenceOrbit`.
 drift
     ``x(t) - x_ref`` on time buckets (default 1 min): the drift at the end of the
     window (last bucket), the largest ``|drift|`` and a decimated series for plots.
@@ -645,7 +646,13 @@ def orbit_matrix(
 
 
 def sampling_rate_Hz(times_ns: np.ndarray) -> float:
-    """Pulse rate from the median spacing of the (sorted, unique) pulse times."""
+    """Pulse rate from the (sorted, unique) pulse times, Hz.
+
+    The median spacing finds the gaps (spacings over 1.5 times it); the rate is
+    then the number of intervals over the time they span, summed over the
+    gap-free runs, which averages out timestamp noise far better than the
+    median alone.
+    """
     times_ns = np.asarray(times_ns)
     if times_ns.size < 2:
         return math.nan
@@ -653,7 +660,9 @@ def sampling_rate_Hz(times_ns: np.ndarray) -> float:
     spacing = spacing[spacing > 0]
     if spacing.size == 0:
         return math.nan
-    return float(_NS_PER_S / np.median(spacing))
+    median = float(np.median(spacing))
+    regular = spacing[spacing <= 1.5 * median]
+    return float(_NS_PER_S * regular.size / regular.sum())
 
 
 # ---------------------------------------------------------------------------
@@ -938,8 +947,9 @@ def _detect_steps_columns(
         values = values[:, None]
     bucket_ns = int(round(bucket_s * _NS_PER_S))
     centres = (starts - starts[0]) / _NS_PER_S + 0.5 * bucket_s
-    w = max(int(round(window_s / bucket_s)), 3)
     n_buckets, n_cols = means.shape
+    # half-window in buckets; a short record gets a shorter window (a quarter of it)
+    w = max(min(int(round(window_s / bucket_s)), n_buckets // 4), 3)
     found: list[list[tuple[int, float, float, float]]] = [[] for _ in range(n_cols)]
     if n_buckets < 2 * max(3, w // 2) + 1:
         return found
@@ -1010,7 +1020,8 @@ def detect_steps(
     of the estimate over all boundaries.  A step is reported where this exceeds
     ``h = Phi^-1(1 - alpha / (2 n))`` for ``n`` tested boundaries and false-alarm
     probability ``alpha`` (Bonferroni), strongest first, each masking
-    ``window`` around itself.  The time is refined to the pulse that best splits
+    ``window`` around itself (a record shorter than four windows uses a quarter
+    of its length as the window).  The time is refined to the pulse that best splits
     the two buckets around the boundary; the size is refitted without the mixed
     bucket.  This is a windowed two-sample (likelihood-ratio) form of the
     change-point test of Page, "Continuous inspection schemes", Biometrika 41,
@@ -1047,6 +1058,12 @@ def detect_steps(
 
 
 def _times_to_ns(times: object) -> np.ndarray:
+    """Times (int64 ns, datetime-like array, Index or Series) as int64 ns UTC."""
+    if isinstance(times, pd.Series):
+        times = pd.DatetimeIndex(times) if not pd.api.types.is_integer_dtype(times.dtype) else times.to_numpy()
+    if isinstance(times, pd.DatetimeIndex):
+        index = times.tz_localize("UTC") if times.tz is None else times.tz_convert("UTC")
+        return np.asarray(index.as_unit("ns").asi8, dtype=np.int64)
     arr = np.asarray(times)
     if arr.dtype.kind in "iu":
         return arr.astype(np.int64)
@@ -1546,26 +1563,8 @@ def principal_modes(
 # ---------------------------------------------------------------------------
 
 
-def _detrend(series: np.ndarray, method: str) -> np.ndarray:
-    """Detrend columns of a bucket series (NaN kept)."""
-    if method == "none":
-        return series
-    if method == "difference":
-        out = np.full_like(series, np.nan)
-        out[1:] = np.diff(series, axis=0)
-        return out
-    out = np.full_like(series, np.nan)
-    t = np.arange(series.shape[0], dtype=np.float64)
-    for col in range(series.shape[1]):
-        good = np.isfinite(series[:, col])
-        if good.sum() >= 2:
-            coef = np.polyfit(t[good], series[good, col], 1)
-            out[good, col] = series[good, col] - np.polyval(coef, t[good])
-    return out
-
-
 def _shift(series: np.ndarray, lag: int) -> np.ndarray:
-    """``out[i] = series[i - lag]`` (NaN where undefined)."""
+    """``out[i] = series[i - lag]`` along axis 0 (NaN where undefined)."""
     out = np.full_like(series, np.nan)
     if lag == 0:
         return series.copy()
@@ -1576,19 +1575,35 @@ def _shift(series: np.ndarray, lag: int) -> np.ndarray:
     return out
 
 
-def _pearson_columns(x: np.ndarray, t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Pearson r of each column of ``x`` with ``t`` (1-D), over pairs both finite."""
-    good = np.isfinite(x) & np.isfinite(t)[:, None]
-    n = good.sum(axis=0)
-    tt = np.where(good, t[:, None], 0.0)
+def _lagged_moments(
+    x: np.ndarray, c: np.ndarray, t: np.ndarray, *, trend: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Centred sums ``(n, Cxx, Ccc, Cxc)`` per column over pairs where both are finite.
+
+    With ``trend``, the sums are partial on a straight line in ``t``
+    (``C_ab.t = C_ab - C_at C_bt / C_tt``): the correlation of what is left of
+    ``x`` and ``c`` after each has its own least-squares line over the same
+    pairs removed.
+    """
+    good = np.isfinite(x) & np.isfinite(c)[:, None]
+    g = good.astype(np.float64)
+    n = g.sum(axis=0)
     xx = np.where(good, x, 0.0)
+    cc = np.where(good, c[:, None], 0.0)
+    tt = g * t[:, None]
     with np.errstate(invalid="ignore", divide="ignore"):
-        mt = tt.sum(axis=0) / n
-        mx = xx.sum(axis=0) / n
-        dt = np.where(good, tt - mt, 0.0)
+        mx, mc, mt = xx.sum(0) / n, cc.sum(0) / n, tt.sum(0) / n
         dx = np.where(good, xx - mx, 0.0)
-        r = (dt * dx).sum(axis=0) / np.sqrt((dt * dt).sum(axis=0) * (dx * dx).sum(axis=0))
-    return r, n
+        dc = np.where(good, cc - mc, 0.0)
+        dt = np.where(good, tt - mt, 0.0)
+        cxx, ccc, cxc = (dx * dx).sum(0), (dc * dc).sum(0), (dx * dc).sum(0)
+        if trend:
+            ctt = (dt * dt).sum(0)
+            cxt, cct = (dx * dt).sum(0), (dc * dt).sum(0)
+            cxx = cxx - cxt * cxt / ctt
+            ccc = ccc - cct * cct / ctt
+            cxc = cxc - cxt * cct / ctt
+    return n, cxx, ccc, cxc
 
 
 def correlate_slow(
@@ -1601,14 +1616,16 @@ def correlate_slow(
 ) -> list[tuple[float, float, float, float, int]]:
     """Slope, error, Pearson r and best lag of drift against one slow channel.
 
-    Both series are on the same time buckets (length ``bucket_s``).  After the
-    chosen detrending (:data:`DETREND_METHODS`: a straight line removed from
-    each, first differences, or none; detrending avoids the spurious
-    correlation of two trending series, Granger & Newbold, J. Econometrics 2,
-    111 (1974)), the lag ``tau`` in ``[-max_lag_s, max_lag_s]`` (steps of one
-    bucket) that maximises ``|r|`` of ``x(t)`` against ``T(t - tau)`` is chosen,
-    and ``x = a + b T(t - tau)`` fitted by least squares.  The slope's standard
-    error is widened by ``sqrt((1 + rho1) / (1 - rho1))`` for lag-1
+    Both series are on the same time buckets (length ``bucket_s``).  For every
+    lag ``tau`` in ``[-max_lag_s, max_lag_s]`` (steps of one bucket) the pairs
+    ``x(t), T(t - tau)`` are formed and, with ``detrend="linear"``, each member
+    of the pairs has its own straight line in ``t`` removed over those same
+    pairs (partial correlation on a linear trend); ``"difference"`` correlates
+    first differences; ``"none"`` the series as they are.  Detrending avoids the
+    spurious correlation of two trending series (Granger & Newbold, J.
+    Econometrics 2, 111 (1974)).  The lag with the largest ``|r|`` is kept and
+    ``x = a (+ c t) + b T(t - tau)`` fitted by least squares; the standard error
+    of ``b`` is widened by ``sqrt((1 + rho1) / (1 - rho1))`` for lag-1
     autocorrelation of the residuals (METHODS.md sections 5.2 and 5.6).
 
     Parameters
@@ -1619,6 +1636,7 @@ def correlate_slow(
         The slow channel on the same buckets (its own unit).
     bucket_s, max_lag_s : float
     detrend : str
+        One of :data:`DETREND_METHODS`.
 
     Returns
     -------
@@ -1626,34 +1644,41 @@ def correlate_slow(
     """
     if detrend not in DETREND_METHODS:
         raise InputError(f"option detrend: {detrend!r} (expected one of {', '.join(DETREND_METHODS)})")
-    x = _detrend(np.asarray(drift, dtype=np.float64), detrend)
-    t = _detrend(np.asarray(channel, dtype=np.float64)[:, None], detrend)[:, 0]
+    x = np.asarray(drift, dtype=np.float64)
+    c = np.asarray(channel, dtype=np.float64)
+    if detrend == "difference":
+        x = np.vstack([np.full((1, x.shape[1]), np.nan), np.diff(x, axis=0)])
+        c = np.r_[np.nan, np.diff(c)]
+    trend = detrend == "linear"
+    t = np.arange(x.shape[0], dtype=np.float64)
     max_lag = int(max_lag_s // bucket_s)
-    lags = np.arange(-max_lag, max_lag + 1)
+    minimum = 5 + int(trend)
     best_r = np.full(x.shape[1], np.nan)
     best_lag = np.zeros(x.shape[1], dtype=int)
-    for lag in lags:
-        r, n = _pearson_columns(x, _shift(t[:, None], int(lag))[:, 0])
-        better = np.isfinite(r) & (n >= 5) & (np.abs(r) > np.where(np.isfinite(best_r), np.abs(best_r), -1.0))
+    for lag in range(-max_lag, max_lag + 1):
+        n, cxx, ccc, cxc = _lagged_moments(x, _shift(c, lag), t, trend=trend)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = cxc / np.sqrt(cxx * ccc)
+        better = np.isfinite(r) & (n >= minimum) & (np.abs(r) > np.where(np.isfinite(best_r), np.abs(best_r), -1.0))
         best_r = np.where(better, r, best_r)
         best_lag = np.where(better, lag, best_lag)
     out = []
     for col in range(x.shape[1]):
-        ts = _shift(t[:, None], int(best_lag[col]))[:, 0]
-        good = np.isfinite(x[:, col]) & np.isfinite(ts)
+        cs = _shift(c, int(best_lag[col]))
+        good = np.isfinite(x[:, col]) & np.isfinite(cs)
         n = int(good.sum())
-        if n < 5 or not np.isfinite(best_r[col]):
+        if n < minimum or not np.isfinite(best_r[col]):
             out.append((math.nan, math.nan, math.nan, math.nan, n))
             continue
-        tv, xv = ts[good], x[good, col]
-        dt = tv - tv.mean()
-        sxx = float(dt @ dt)
-        slope = float(dt @ (xv - xv.mean())) / sxx
-        resid = xv - xv.mean() - slope * dt
-        s2 = float(resid @ resid) / (n - 2)
+        columns = [np.ones(n), cs[good]] + ([t[good] - t[good].mean()] if trend else [])
+        design = np.column_stack(columns)
+        coef, *_ = np.linalg.lstsq(design, x[good, col], rcond=None)
+        resid = x[good, col] - design @ coef
+        dof = n - design.shape[1]
+        cov = np.linalg.pinv(design.T @ design) * float(resid @ resid) / dof
         rho = min(max(_lag1_autocorrelation(resid), 0.0), 0.99)
-        err = math.sqrt(s2 / sxx) * math.sqrt((1 + rho) / (1 - rho))
-        out.append((slope, err, float(best_r[col]), float(best_lag[col] * bucket_s), n))
+        err = math.sqrt(cov[1, 1]) * math.sqrt((1 + rho) / (1 - rho))
+        out.append((float(coef[1]), err, float(best_r[col]), float(best_lag[col] * bucket_s), n))
     return out
 
 
@@ -1851,7 +1876,8 @@ def analyze_orbit(
         is correlated with every BPM plane's drift.
     reference : ReferenceOrbit or (start, end), optional
         Saved reference orbit, or a time window; default the first
-        ``reference_minutes`` of the data.
+        ``reference_minutes`` of the data; a record shorter than twice that
+        uses its first third.
     reference_minutes : float
         Length of the default reference window, minutes.
     start, end : time-like, optional
@@ -1928,7 +1954,10 @@ def analyze_orbit(
         ref = reference_orbit(matrix, start=reference[0], end=reference[1])
         ref_mask = (times_ns >= _as_ns(ref.start)) & (times_ns < _as_ns(ref.end))
     elif reference is None:
-        ref = reference_orbit(matrix, minutes=reference_minutes)
+        # the first reference_minutes; a record shorter than twice that uses its first third
+        span_min = (times_ns[-1] - times_ns[0]) / _NS_PER_S / 60.0
+        ref_minutes = span_min / 3.0 if 0 < span_min < 2 * reference_minutes else reference_minutes
+        ref = reference_orbit(matrix, minutes=max(ref_minutes, 1e-9))
         ref_mask = (times_ns >= _as_ns(ref.start)) & (times_ns < _as_ns(ref.end))
     else:
         raise InputError(
@@ -2086,9 +2115,9 @@ def analyze_orbit(
         notes.append("no transmission: sum signals missing")
 
     duration_s = (times_ns[-1] - times_ns[0]) / _NS_PER_S
-    if duration_s < 2 * reference_minutes * 60:
-        report_flags.append("provisional")
-        notes.append(f"window of {duration_s / 60:.3g} min is short against the {reference_minutes:g} min reference")
+    ref_span_s = (_as_ns(ref.end) - _as_ns(ref.start)) / _NS_PER_S if ref.start is not None else math.nan
+    if isinstance(ref_span_s, float) and ref_span_s < reference_minutes * 60 * (1 - 1e-9):
+        notes.append(f"reference window shortened to {ref_span_s / 60:.3g} min (record of {duration_s / 60:.3g} min)")
 
     trends = None
     if keep_trends:
@@ -2206,6 +2235,7 @@ __all__ = [
     "marchenko_pastur_median",
     "natural_order",
     "orbit_matrix",
+    "orbit_record",
     "principal_modes",
     "reference_orbit",
     "sampling_rate_Hz",
@@ -2213,3 +2243,62 @@ __all__ = [
     "spectrum",
     "transmission",
 ]
+
+
+def orbit_record(report: OrbitReport, *, n_mode_vectors: int = 3) -> dict[str, object]:
+    """The report as one JSON-safe mapping (what ``beamdiag orbit --json`` prints).
+
+    Keys: ``start``, ``end``, ``sampling_Hz``, ``nyquist_Hz``, ``n_pulses``,
+    ``n_readings``, ``reference`` (window), ``bpms`` (name -> {"x": {...},
+    "y": {...}}), ``steps`` (all, by time), ``modes``, ``correlations``,
+    ``transmission``, ``loss_events``, ``limits``, ``violations``,
+    ``out_of_limit_bpms``, ``known_line_aliases``, ``options``, ``flags``,
+    ``message``.  The trends (arrays for plots) are left out.
+    """
+    from diagnostics.results import jsonable
+
+    bpms: dict[str, dict[str, object]] = {name: {} for name in report.bpms}
+    for item in report.summaries:
+        record = jsonable(item)
+        record.pop("bpm")
+        record.pop("plane")
+        bpms[item.bpm][item.plane] = record
+    modes = []
+    for mode in report.modes:
+        modes.append(
+            {
+                "plane": mode.plane,
+                "singular_values_m": jsonable(mode.singular_values_m),
+                "explained_fraction": jsonable(mode.explained_fraction),
+                "mode_bpms": jsonable(mode.mode_bpms),
+                "spatial_modes": jsonable(mode.spatial_modes[:n_mode_vectors]),
+                "noise_floor_m": jsonable(mode.noise_floor_m),
+                "noise_band_m": jsonable(mode.noise_band_m),
+                "n_above_noise": mode.n_above_noise,
+                "n_pulses": mode.n_pulses,
+                "flags": list(mode.flags),
+                "message": mode.message,
+            }
+        )
+    return {
+        "start": jsonable(report.start),
+        "end": jsonable(report.end),
+        "sampling_Hz": jsonable(report.sampling_Hz),
+        "nyquist_Hz": jsonable(report.nyquist_Hz),
+        "n_pulses": report.n_pulses,
+        "n_readings": report.n_readings,
+        "reference": {"start": jsonable(report.reference.start), "end": jsonable(report.reference.end)},
+        "bpms": bpms,
+        "steps": [{"bpm": b, "plane": p, **jsonable(s)} for b, p, s in report.steps],
+        "modes": modes,
+        "correlations": jsonable(report.correlations),
+        "transmission": jsonable(report.transmission),
+        "loss_events": jsonable(report.loss_events),
+        "limits": jsonable(report.limits),
+        "violations": jsonable(report.violations),
+        "out_of_limit_bpms": list(report.out_of_limit_bpms),
+        "known_line_aliases": jsonable(report.known_line_aliases),
+        "options": jsonable(report.options),
+        "flags": list(report.flags),
+        "message": report.message,
+    }
