@@ -919,7 +919,9 @@ def _scan_front_end(
             design=design.get(plane),
             energy_spread=None if is_multi else energy_spread,
             chromatic=chromatic,
-            settings=settings,
+            # shots at one monitor are one setting: group by monitor name (or by matrix)
+            groups=(None if step_labels is None else [str(v) for v in step_labels]) if is_multi else None,
+            settings=None if is_multi else settings,
             optics_model=None if is_multi else scan.matrices,
             point_flags=pflags,
             plane=plane,

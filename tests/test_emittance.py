@@ -646,3 +646,19 @@ def test_full_chain_from_screen_images_recovers_emittance():
     assert res.x.emittance_m_rad == pytest.approx(2e-8, rel=0.03)
     assert res.y.emittance_m_rad == pytest.approx(3e-8, rel=0.03)
     assert "saturated" not in res.flags and "clipped" not in res.flags
+
+
+def test_multi_monitor_shots_at_one_monitor_are_one_setting():
+    """Three shots at each of four screens are four settings; two screens are too few."""
+    which = np.repeat(np.arange(4), 3)
+    mats = thin_case1_matrices(np.array([-0.4, 0.3, 0.9, 1.6])[which])  # well spread phase advances
+    names = [f"SCR-0{v + 1}" for v in which]
+    rng = np.random.default_rng(12)
+    sig = sizes_from(mats) * (1 + 0.01 * rng.standard_normal(which.size))
+    res = em.analyze_multi_monitor(mats, mats, sig, sig, kinematics=None, monitor_names=names)
+    assert res.x.n_points == 12 and res.x.n_settings == 4 and res.x.weights == "absolute"
+    assert abs(res.x.emittance_m_rad - 1e-6) < 4 * res.x.emittance_err_m_rad
+    two = em.analyze_multi_monitor(mats[:6], mats[:6], sig[:6], sig[:6], kinematics=None, monitor_names=names[:6])
+    assert "too_few_points" in two.x.flags and two.x.n_settings == 2
+    unnamed = em.analyze_multi_monitor(mats, mats, sig, sig, kinematics=None)
+    assert unnamed.x.n_settings == 4  # grouped by equal matrices
