@@ -619,9 +619,10 @@ def analyze_image(
 
     # ---- 2./3. fine stage: crop, clean, iterate the window
     def window_of(cx, cy, sx, sy):
+        # pixels whose centres satisfy |x - cx| <= n sx and |y - cy| <= n sy (half-open bounds)
         return (
-            max(0, math.floor(cx - n * sx)), max(0, math.floor(cy - n * sy)),
-            min(W, math.ceil(cx + n * sx) + 1), min(H, math.ceil(cy + n * sy) + 1),
+            max(0, math.ceil(cx - n * sx)), max(0, math.ceil(cy - n * sy)),
+            min(W, math.floor(cx + n * sx) + 1), min(H, math.floor(cy + n * sy) + 1),
         )
 
     crop = None
@@ -632,7 +633,7 @@ def analyze_image(
     bgv, noise = bg_r, noise_r * b
     img = None
     converged = False
-    for _ in range(30):
+    for it in range(30):
         if clean is None or not (win[0] >= clean[0] and win[1] >= clean[1] and win[2] <= clean[2] and win[3] <= clean[3]):
             # crop with a margin of a quarter window (at least 6 px) for the pedestal;
             # hot pixels are removed in the window plus 10 % (at least 3 px) only
@@ -662,6 +663,8 @@ def analyze_image(
         if new == win:
             converged = True
             break
+        if it == 29 or new[2] - new[0] < 3 or new[3] - new[1] < 3:
+            break  # keep the last window whose moments were computed
         win = new
     flags: list[str] = []
     notes: list[str] = []
