@@ -1181,7 +1181,11 @@ def analyze_multi_monitor(
     if mx.shape != (n, 2, 2) or my.shape != (n, 2, 2):
         raise ValueError(f"matrices_x and matrices_y must both have shape (n, 2, 2), got {mx.shape} and {my.shape}")
     scan = ScanOptics("multi_monitor", monitor_x=mx, monitor_y=my)
-    labels = list(monitor_names) if monitor_names is not None else [str(i) for i in range(n)]
+    if monitor_names is not None:
+        labels = [str(v) for v in monitor_names]
+    else:  # shots with the same matrices in both planes are taken to be at the same monitor
+        _, inverse = np.unique(np.concatenate([mx.reshape(n, 4), my.reshape(n, 4)], axis=1), axis=0, return_inverse=True)
+        labels = [f"monitor {int(j)}" for j in np.asarray(inverse).reshape(-1)]
     result = _scan_front_end(
         scan, np.arange(n, dtype=float), sigma_x_m, sigma_y_m,
         sigma_x_err_m=sigma_x_err_m, sigma_y_err_m=sigma_y_err_m, kin=kinematics,
