@@ -27,8 +27,9 @@ Quality flags set here (meanings in :data:`diagnostics.results.FLAGS`):
 ``too_few_points`` (< 3 distinct settings), ``unphysical`` (S11 <= 0, S22 <= 0 or
 det S <= 0, or a constrained fit on the det = 0 boundary), ``poor_fit``
 (chi-square outside the central :data:`POOR_FIT_CONFIDENCE` interval of the
-chi-square distribution with N - 3 degrees of freedom; only with absolute
-weights), ``ill_conditioned`` (cond of the column-normalised weighted design
+chi-square distribution with N - 3 degrees of freedom, or of the F distribution
+F(N - 3, m) when the weights come from a spread pooled over m degrees of
+freedom; only with absolute weights), ``ill_conditioned`` (cond of the column-normalised weighted design
 matrix above :data:`ILL_CONDITIONED`), ``waist_not_crossed``,
 ``resolution_limited``, and the step flags (``clipped``, ``saturated``, ...)
 of the profiles or images used.
@@ -73,6 +74,9 @@ ILL_CONDITIONED = 1e4
 RESOLUTION_FACTOR = 2.0
 #: A constrained (Cholesky) fit with det S / (S11 S22) below this sits on the det = 0 boundary.
 BOUNDARY_DET_RATIO = 1e-6
+#: A setting with at least this many shots is weighted by its own spread; settings with fewer
+#: use the spread pooled (in relative terms) over all repeated settings.
+OWN_SPREAD_MIN_SHOTS = 5
 #: Gauss-Hermite nodes used to average the transfer matrices over the momentum spread.
 N_CHROMATIC_NODES = 9
 #: Grid points on which the fitted sigma^2 curve is searched for its minimum.
@@ -391,6 +395,7 @@ class _Prepared:
     resolution: np.ndarray  # (N,)
     first: np.ndarray  # (N,) index of the first shot of each setting
     n_points: int
+    spread_dof: float = math.inf  # dof of a pooled spread estimate behind the weights
 
 
 def _group_points(matrices, sigma, sigma_err, resolution, resolution_err, groups, settings) -> _Prepared:
@@ -410,9 +415,21 @@ def _group_points(matrices, sigma, sigma_err, resolution, resolution_err, groups
     sq = sigma * sigma
     counts = np.bincount(inverse, minlength=n_set).astype(float)
     mean_sq = np.bincount(inverse, weights=sq, minlength=n_set) / counts
-    # empirical variance of the mean sigma^2 (ddof = 1) where a setting has >= 2 shots
+    # shot-to-shot variance of sigma^2 (ddof = 1) where a setting has >= 2 shots
     dev2 = (sq - mean_sq[inverse]) ** 2
-    emp = np.where(counts >= 2, np.bincount(inverse, weights=dev2, minlength=n_set) / np.maximum(counts - 1, 1) / counts, np.nan)
+    shot_var = np.where(counts >= 2, np.bincount(inverse, weights=dev2, minlength=n_set) / np.maximum(counts - 1, 1), np.nan)
+    emp = np.where(counts >= OWN_SPREAD_MIN_SHOTS, shot_var / counts, np.nan)
+    # settings with fewer shots share the pooled relative spread of all repeated settings: a
+    # variance from 2-4 shots is too noisy to weight a point by itself
+    repeated = counts >= 2
+    pool_dof = float(np.sum(counts[repeated] - 1))
+    spread_dof = math.inf
+    if pool_dof >= 2:
+        pooled_rel = float(np.sum((counts[repeated] - 1) * shot_var[repeated] / mean_sq[repeated] ** 2) / pool_dof)
+        few = counts < OWN_SPREAD_MIN_SHOTS
+        emp[few] = pooled_rel * mean_sq[few] ** 2 / counts[few]
+        if np.any(few) and sigma_err is None:
+            spread_dof = pool_dof
     if sigma_err is not None:
         prop = np.bincount(inverse, weights=(2.0 * sigma * sigma_err) ** 2, minlength=n_set) / counts**2
     else:
@@ -437,6 +454,7 @@ def _group_points(matrices, sigma, sigma_err, resolution, resolution_err, groups
         resolution=res,
         first=first,
         n_points=n,
+        spread_dof=spread_dof,
     )
 
 
@@ -593,8 +611,11 @@ def fit_sigma_matrix(
         Monitor resolution (Gaussian point-spread rms) and its uncertainty, m.
     groups : ndarray (n,), optional
         Setting label of each shot; default: equal ``settings`` (or equal matrices).
-        Shots of one setting are averaged in sigma^2; with >= 2 shots the spread
-        gives Var(sigma^2) (the larger of spread and stated errors is used).
+        Shots of one setting are averaged in sigma^2 and their spread gives
+        Var(sigma^2): a setting's own spread when it has at least
+        :data:`OWN_SPREAD_MIN_SHOTS` shots, otherwise the relative spread pooled
+        over all repeated settings (which then also weights single shots).  The
+        larger of spread and stated errors is used.
     bootstrap : int
         Number of case-resampling bootstrap samples (0: none).
     seed : int or numpy Generator, optional
@@ -710,7 +731,12 @@ def fit_sigma_matrix(
     if dof > 0:
         if prep.absolute:
             chi2_red = chi2 / dof
-            lo, hi = stats.chi2.ppf([(1 - POOR_FIT_CONFIDENCE) / 2, (1 + POOR_FIT_CONFIDENCE) / 2], dof)
+            tails = [(1 - POOR_FIT_CONFIDENCE) / 2, (1 + POOR_FIT_CONFIDENCE) / 2]
+            if math.isfinite(prep.spread_dof):
+                # weights from a pooled spread estimate: chi2_red follows F(dof, spread_dof)
+                lo, hi = stats.f.ppf(tails, dof, prep.spread_dof) * dof
+            else:
+                lo, hi = stats.chi2.ppf(tails, dof)
             if chi2 < lo or chi2 > hi:
                 flags.append("poor_fit")
                 notes.append(f"reduced chi-square {chi2_red:.3g} outside the {POOR_FIT_CONFIDENCE:.1%} interval for {dof} dof")
