@@ -353,6 +353,7 @@ def _read_csv(path: Path, head: CsvHead, read: pcsv.ReadOptions, convert: pcsv.C
 def _diagnose_csv(path: Path, head: CsvHead, kinds: Mapping[str, str], types: Mapping[str, pa.DataType],
                   row_name: RowName) -> pa.Table:
     """Slow path: read all as text, name the first bad line, or return the table."""
+    _check_utf8(path, head)
     bad_rows: list[Any] = []
 
     def on_invalid(row: Any) -> str:
@@ -381,6 +382,26 @@ def _diagnose_csv(path: Path, head: CsvHead, kinds: Mapping[str, str], types: Ma
         else:
             columns[name] = _infer(column)
     return pa.table(columns)
+
+
+def _check_utf8(path: Path, head: CsvHead, chunk: int = 16 << 20) -> None:
+    """Refuse bytes that are not UTF-8, naming the line (decoded in bounded chunks)."""
+    import codecs
+
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    line = head.header_line
+    with path.open("rb") as fh:
+        fh.seek(head.header_offset)
+        while True:
+            block = fh.read(chunk)
+            try:
+                decoder.decode(block, final=not block)
+            except UnicodeDecodeError as exc:
+                line += block.count(b"\n", 0, max(exc.start, 0))
+                raise located(path, f"line {line}: not UTF-8 text (expected a CSV table)") from None
+            if not block:
+                return
+            line += block.count(b"\n")
 
 
 def _infer(column: pa.ChunkedArray) -> pa.Array:
