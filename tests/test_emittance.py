@@ -701,3 +701,28 @@ def test_demo_scan_recovers_the_generator_truth():
         assert plane.norm_emittance_m_rad == pytest.approx(expected, rel=0.03)
         assert abs(plane.norm_emittance_m_rad - expected) < 4 * plane.norm_emittance_err_m_rad
         assert "poor_fit" not in plane.flags
+
+
+def test_chromatic_model_against_a_particle_cloud_with_energy_spread():
+    """2e5 particles from S0 with an uncorrelated 5 % rms momentum spread, each pushed through its own thick
+    quadrupole k(1 - delta) (linear chromaticity, METHODS 1.4) and the 3 m drift: the linear fit overestimates
+    the emittance; chromatic="correct" recovers the cloud's own emittance within 0.5 % (sampling error of
+    2e5 particles ~0.3 %), and the "estimate" bias agrees with the real overestimate within 20 %."""
+    rng = np.random.default_rng(31)
+    n, sd = 200_000, 0.05
+    cloud = rng.multivariate_normal([0.0, 0.0], S0, size=n)
+    delta = sd * rng.standard_normal(n)
+    k = np.linspace(-4.0, 10.0, 15)
+    sig = []
+    for kk in k:
+        m = optics.compose(optics.quad_thick(kk * (1 - delta), 0.2), optics.drift(3.0))
+        sig.append(float(np.std(m[:, 0, 0] * cloud[:, 0] + m[:, 0, 1] * cloud[:, 1])))
+    cloud_eps = math.sqrt(np.linalg.det(np.cov(cloud.T)))
+    scan = em.ScanOptics("quadrupole", length_m=0.2, transport_x=optics.drift(3.0), transport_y=optics.drift(3.0))
+    mats = scan.matrices("x", k)
+    naive = em.fit_sigma_matrix(mats, sig, energy_spread=sd, settings=k, optics_model=scan.matrices)
+    fixed = em.fit_sigma_matrix(mats, sig, energy_spread=sd, chromatic="correct", settings=k, optics_model=scan.matrices)
+    assert fixed.emittance_m_rad == pytest.approx(cloud_eps, rel=0.005)
+    real_bias = naive.emittance_m_rad / cloud_eps - 1
+    assert real_bias > 0.015
+    assert naive.chromatic_bias == pytest.approx(real_bias, rel=0.2)
