@@ -648,6 +648,15 @@ def fit_sigma_matrix(
     Returns
     -------
     PlaneResult
+
+    Examples
+    --------
+    Screens 0, 1, 2 and 3 m behind the reference point (METHODS 6.4 case 3):
+
+    >>> r = fit_sigma_matrix(optics.drift(np.array([0.0, 1.0, 2.0, 3.0])),
+    ...                      np.sqrt([1.0e-5, 1.22e-5, 1.48e-5, 1.78e-5]))
+    >>> round(r.emittance_m_rad * 1e6, 9), round(r.beta_m, 9), round(r.alpha, 9)
+    (1.0, 10.0, -1.0)
     """
     if chromatic not in CHROMATIC_MODES:
         raise ValueError(f"chromatic must be one of {CHROMATIC_MODES}, got {chromatic!r}")
@@ -686,7 +695,7 @@ def fit_sigma_matrix(
         sets = sets[keep]
     if grp is not None:
         grp = grp[keep]
-    base = {"n_points": int(sig.size)}
+    base: dict[str, Any] = {"n_points": int(sig.size)}
     design_vals = {}
     if design is not None:
         design_vals = {"design_beta_m": float(design.beta_m), "design_alpha": float(design.alpha)}
@@ -789,7 +798,7 @@ def fit_sigma_matrix(
         if not on_boundary:
             notes.append(f"fitted beam matrix not positive definite (S11={s[0]:.3g} m^2, S22={s[2]:.3g}, det={det:.3g}): no emittance")
         if bootstrap:
-            values["bootstrap"] = _bootstrap(*scaled, bootstrap, seed)
+            values["bootstrap"] = _bootstrap(scaled[0], scaled[1], scaled[2], bootstrap, seed)
         return _plain_result(plane, reference_point, flags, "; ".join(notes), **values)
 
     eps, beta, alpha, gamma = tw
@@ -829,7 +838,7 @@ def fit_sigma_matrix(
                 values["chromatic_bias"] = tw_b[0] / eps - 1.0
                 notes.append(f"energy spread {energy_spread:.3g}: estimated chromatic bias of the emittance {values['chromatic_bias']:+.2%}")
     if bootstrap:
-        values["bootstrap"] = _bootstrap(*scaled, bootstrap, seed)
+        values["bootstrap"] = _bootstrap(scaled[0], scaled[1], scaled[2], bootstrap, seed)
     return _plain_result(plane, reference_point, flags, "; ".join(notes), **values)
 
 
@@ -971,7 +980,7 @@ def _scan_front_end(
                     reference_point=ref,
                 )
                 ratio = None
-                if thin.ok and result.ok:
+                if thin.emittance_m_rad is not None and result.emittance_m_rad is not None:
                     ratio = thin.emittance_m_rad / result.emittance_m_rad
                 result = dataclasses.replace(
                     result,
@@ -1026,6 +1035,12 @@ _COMMON_DOC = """
         See :func:`fit_sigma_matrix`.
     step_flags_x, step_flags_y : sequence of tuple of str, optional
         Flags of the profile/image behind each step.
+    name, timestamp, options
+        Copied into the result (``options`` merged into the analysis options).
+
+    Returns
+    -------
+    EmittanceResult
 """
 
 
@@ -1094,7 +1109,7 @@ def analyze_quad_scan(
     )  # fmt: skip
 
 
-analyze_quad_scan.__doc__ += _COMMON_DOC
+analyze_quad_scan.__doc__ = (analyze_quad_scan.__doc__ or "") + _COMMON_DOC
 
 
 def analyze_solenoid_scan(
@@ -1158,7 +1173,7 @@ def analyze_solenoid_scan(
     )  # fmt: skip
 
 
-analyze_solenoid_scan.__doc__ += _COMMON_DOC
+analyze_solenoid_scan.__doc__ = (analyze_solenoid_scan.__doc__ or "") + _COMMON_DOC
 
 
 def analyze_multi_monitor(
@@ -1230,7 +1245,7 @@ def analyze_multi_monitor(
     return result
 
 
-analyze_multi_monitor.__doc__ += _COMMON_DOC
+analyze_multi_monitor.__doc__ = (analyze_multi_monitor.__doc__ or "") + _COMMON_DOC
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1407,7 +1422,7 @@ def analyze_scan(
     if resolution_m is not None:
         res: Any = float(resolution_m)
     elif spec.kind == "multi_monitor":
-        res = np.array([by_name[s.monitor].resolution_m for s in spec.steps], dtype=float)
+        res = np.array([by_name[str(s.monitor)].resolution_m for s in spec.steps], dtype=float)
     else:
         res = float(spec.monitors[0].resolution_m) if spec.monitors else 0.0
     extra_flags = [] if spec.complete else ["provisional"]
@@ -1612,11 +1627,12 @@ def scan_plot_data(result: EmittanceResult, spec_or_inputs, *, n_grid: int = 200
                 band = np.sqrt(np.maximum(np.einsum("ni,ij,nj->n", rows, cov, rows), 0.0))
                 entry["band_lo_m2"] = (fit - band).tolist()
                 entry["band_hi_m2"] = (fit + band).tolist()
-        if plane.ok:
-            x, xp = optics.ellipse_points(plane.emittance_m_rad, plane.beta_m, plane.alpha, n_points=n_ellipse)
+        eps, beta, alpha = plane.emittance_m_rad, plane.beta_m, plane.alpha
+        if eps is not None and beta is not None and alpha is not None:
+            x, xp = optics.ellipse_points(eps, beta, alpha, n_points=n_ellipse)
             entry["ellipse"]["measured"] = {"x_m": x.tolist(), "xp_rad": xp.tolist()}
-            if plane.design_beta_m is not None:
-                x, xp = optics.ellipse_points(plane.emittance_m_rad, plane.design_beta_m, plane.design_alpha, n_points=n_ellipse)
+            if plane.design_beta_m is not None and plane.design_alpha is not None:
+                x, xp = optics.ellipse_points(eps, plane.design_beta_m, plane.design_alpha, n_points=n_ellipse)
                 entry["ellipse"]["design"] = {"x_m": x.tolist(), "xp_rad": xp.tolist()}
         planes[name] = entry
     return {"kind": result.kind, "setting_name": scan.setting_name, "reference_point": result.x.reference_point, "planes": planes}
