@@ -726,3 +726,28 @@ def test_chromatic_model_against_a_particle_cloud_with_energy_spread():
     real_bias = naive.emittance_m_rad / cloud_eps - 1
     assert real_bias > 0.015
     assert naive.chromatic_bias == pytest.approx(real_bias, rel=0.2)
+
+
+def test_plot_data_of_a_solenoid_scan():
+    """Fitted curve with its +-1 sd band, measured points and both ellipses, as plain lists."""
+    field = np.array([0.05, 0.10, 0.15, 0.20, 0.25])
+    kin = kinematics(5.0, "electron")
+    scan = em.ScanOptics("solenoid", length_m=0.2, transport_x=optics.drift(1.5), transport_y=optics.drift(1.5), brho_T_m=kin.brho_T_m)
+    true = sizes_from(scan.matrices("x", field))
+    rng = np.random.default_rng(4)
+    meas = true * (1 + 0.02 * rng.standard_normal(field.size))
+    res = em.analyze_solenoid_scan(
+        field, meas, meas, sigma_x_err_m=0.02 * meas, sigma_y_err_m=0.02 * meas, length_m=0.2,
+        transport_x=optics.drift(1.5), transport_y=optics.drift(1.5), kinematics=kin,
+        design={"x": DesignTwiss(10.0, -1.0)},
+    )  # fmt: skip
+    data = em.scan_plot_data(res, scan, n_grid=50)
+    px = data["planes"]["x"]
+    assert data["setting_name"] == "field_T" and data["reference_point"] == "solenoid entrance"
+    lo, fit, hi = (np.array(px[k]) for k in ("band_lo_m2", "fit_sigma2_m2", "band_hi_m2"))
+    assert lo.shape == fit.shape == hi.shape == (50,)
+    assert np.all(lo <= fit) and np.all(fit <= hi) and np.all(hi - lo > 0)
+    assert len(px["ellipse"]["measured"]["x_m"]) == 181 and px["ellipse"]["design"] is not None
+    assert data["planes"]["y"]["ellipse"]["design"] is None
+    # the fitted curve follows the measured points: reduced chi-square of a 2 % noise scan
+    assert res.x.chi2_red < 10
