@@ -424,15 +424,15 @@ def cast_text(column: pa.ChunkedArray | pa.Array, ty: pa.DataType, path: Path, n
     if pa.types.is_dictionary(ty):
         return pc.dictionary_encode(values)
     # pyarrow's CSV reader trims blanks around numbers; its cast kernel does not.
+    # Empty fields become nulls, as on the fast path (callers refuse them where needed).
     trimmed = pc.utf8_trim_whitespace(values)
+    trimmed = pc.if_else(pc.equal(trimmed, ""), pa.scalar(None, pa.string()), trimmed)
     try:
         return pc.cast(trimmed, ty)
     except LIBRARY_ERRORS:
         pass
     i = first_failing(trimmed, ty)
     raw = values[i].as_py()
-    if raw is None or not str(raw).strip():
-        raise located(path, f"{row_name(i)}: column {name!r} is empty (expected {_expected(ty)})")
     if ty == TIME_TYPE:
         try:
             pc.cast(trimmed.slice(i, 1), pa.timestamp("ns"))
@@ -666,23 +666,29 @@ def check_series_order(times_ns: np.ndarray, codes: np.ndarray, n_codes: int, pa
 
 
 def text_codes(table: pa.Table, name: str) -> tuple[np.ndarray, list[str], pa.ChunkedArray]:
-    """Integer codes, the distinct values and the column as text (dictionary-decoded)."""
+    """Integer codes, the distinct values and the column as text, blanks trimmed.
+
+    Works on the dictionary (a few distinct names), not on every row: names are
+    trimmed of surrounding blanks there, and names that become equal share a
+    code.  Nulls get code 0 (callers refuse them first).
+    """
     column = table.column(name)
     if not pa.types.is_dictionary(column.type):
         column = pc.dictionary_encode(column)
         if isinstance(column, pa.Array):
             column = pa.chunked_array([column])
-    table_d = pa.table({name: column}).unify_dictionaries()
-    column = table_d.column(name)
-    if column.num_chunks == 0:
-        return np.empty(0, np.int32), [], pa.chunked_array([], pa.string())
-    dictionary = column.chunks[0].dictionary
+    column = pa.table({name: column}).unify_dictionaries().column(name)
+    if column.num_chunks == 0 or len(column) == 0:
+        return np.empty(0, np.int32), [], pa.chunked_array([pa.array([], pa.string())])
+    dictionary = pc.utf8_trim_whitespace(column.chunks[0].dictionary).to_pylist()
     indices = pa.chunked_array([c.indices for c in column.chunks], pa.int32())
     if indices.null_count:
         indices = pc.fill_null(indices, 0)
-    codes = column_numpy(indices)
-    names = dictionary.to_pylist()
-    return codes, names, pc.cast(column, pa.string())
+    names, inverse = np.unique(np.array(dictionary, dtype=object), return_inverse=True)
+    codes = inverse.astype(np.int32)[column_numpy(indices)]
+    names_list = [str(n) for n in names]
+    text = pa.DictionaryArray.from_arrays(pa.array(codes), pa.array(names_list, pa.string())).cast(pa.string())
+    return codes, names_list, pa.chunked_array([text])
 
 
 def to_frame(columns: Mapping[str, pa.Array | pa.ChunkedArray]) -> pd.DataFrame:

@@ -108,7 +108,9 @@ def read_bpm(path: str | Path) -> pd.DataFrame:
         _util.check_finite(table.column(column), p, column, row_name)
         out[f"{plane}_m"] = pc.multiply(table.column(column), POSITION_UNITS[column.split("_", 1)[1]])
     if "sum" in kinds:
-        total = pc.fill_null(table.column("sum"), np.nan)
+        total = table.column("sum")
+        if total.null_count:
+            total = pc.fill_null(total, np.nan)
         _util.check_finite(total, p, "sum", row_name, allow_nan=True)
         out["sum"] = total
     else:

@@ -63,7 +63,7 @@ def read_slow(path: str | Path) -> pd.DataFrame:
     for required in SLOW_COLUMNS:
         if required not in names:
             raise _util.missing_column(p, required, names)
-    kinds = {"timestamp": "time", "channel": "name", "value": "float", "unit": "text"}
+    kinds = {"timestamp": "time", "channel": "name", "value": "float", "unit": "name"}
     if head is not None:
         table, row_name = _util.read_csv_table(p, head, kinds)
     else:
@@ -77,13 +77,14 @@ def read_slow(path: str | Path) -> pd.DataFrame:
         i = int(np.argmax(codes == channels.index(""))) if "" in channels else _util.first_null(table, "channel")
         raise located(p, f"{row_name(i)}: column 'channel' is empty (expected a channel name)")
     _util.check_finite(table.column("value"), p, "value", row_name)
-    _check_one_unit(table, codes, channels, p, row_name)
+    unit_codes, units, unit_text = _util.text_codes(table, "unit")
+    _check_one_unit(codes, channels, unit_codes, units, p, row_name)
 
     out: dict[str, pa.Array | pa.ChunkedArray] = {
         "timestamp": table.column("timestamp"),
         "channel": channel_text,
         "value": table.column("value"),
-        "unit": table.column("unit"),
+        "unit": unit_text,
     }
     for name in table.column_names:
         if name not in out:
@@ -96,10 +97,9 @@ def read_slow(path: str | Path) -> pd.DataFrame:
     return frame
 
 
-def _check_one_unit(table: pa.Table, codes: np.ndarray, channels: list[str], path: Path,
-                    row_name: _util.RowName) -> None:
+def _check_one_unit(codes: np.ndarray, channels: list[str], unit_codes: np.ndarray, units: list[str],
+                    path: Path, row_name: _util.RowName) -> None:
     """Refuse a channel whose unit changes inside the file."""
-    unit_codes, units, _ = _util.text_codes(table, "unit")
     pair = codes.astype(np.int64) * max(len(units), 1) + unit_codes
     pairs, first = np.unique(pair, return_index=True)
     channel_of = pairs // max(len(units), 1)
