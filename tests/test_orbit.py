@@ -491,3 +491,15 @@ def test_bad_inputs_raise_one_line_input_errors():
         orbit.analyze_orbit(df, jitter_method="median")
     with pytest.raises(InputError, match="no readings in the selected time range"):
         orbit.orbit_matrix(df, start="2027-01-01")
+
+
+@pytest.mark.parametrize("nperseg", [256, 257])
+def test_welch_power_matches_scipy_welch_spectrum_scaling(nperseg):
+    """Reference: scipy.signal.welch(window='hann', detrend=False, scaling='spectrum'), even and odd segments."""
+    rng = np.random.default_rng(30)
+    x = rng.normal(size=(5000, 3))
+    f_ref, p_ref = signal.welch(x, fs=7.0, window="hann", nperseg=nperseg, noverlap=nperseg // 2,
+                                detrend=False, scaling="spectrum", axis=0)
+    f, p = orbit._welch_power(x, 7.0, nperseg)
+    np.testing.assert_allclose(f, f_ref)
+    np.testing.assert_allclose(p, p_ref, rtol=1e-10)
