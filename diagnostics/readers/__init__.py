@@ -22,7 +22,8 @@ its column names (it never raises).  Some files are parts of another input and
 are no input of their own; :func:`is_auxiliary` says so:
 
 * an image's JSON sidecar (``<stem>.json`` next to ``<stem>.png``);
-* a dark frame that a sidecar in the same folder names in ``dark``;
+* a dark frame that a sidecar names in ``dark`` (the sidecar sits in the dark
+  frame's folder or up to :data:`DARK_SEARCH_LEVELS` - 1 folders above);
 * anything inside a scan folder (a folder holding ``scan.json``): the folder is
   the input.
 
@@ -47,6 +48,13 @@ from diagnostics.readers.scan import read_scan
 from diagnostics.readers.screen import IMAGE_SUFFIXES, read_frame
 from diagnostics.readers.slow import read_slow
 from diagnostics.readers.wire import read_profile
+
+#: Version of the readers' behaviour, recorded by the store's ledger with every
+#: input; bump it when a reader accepts, refuses or converts differently.
+READER_VERSION = "1"
+
+#: How many folder levels above a dark frame are searched for the sidecar naming it.
+DARK_SEARCH_LEVELS = 3
 
 #: The kinds of input, as the store names its datasets.
 KINDS = ("profiles", "frames", "bpm", "slow", "scans")
@@ -126,7 +134,9 @@ def is_auxiliary(path: str | Path) -> bool:
     if suffix == ".json":
         return any(p.with_suffix(s).is_file() or p.with_suffix(s.upper()).is_file() for s in IMAGE_SUFFIXES)
     if suffix in IMAGE_SUFFIXES:
-        return p.resolve() in _dark_frames(p.parent)
+        target = p.resolve()
+        folders = [p.parent, *list(p.parent.parents)[: DARK_SEARCH_LEVELS - 1]]
+        return any(target in _dark_frames(folder) for folder in folders)
     return False
 
 
@@ -166,12 +176,14 @@ def iter_inputs(paths: Iterable[str | Path]) -> Iterator[Path]:
     for raw in paths:
         p = Path(raw)
         if p.is_dir():
-            yield from _walk(p)
+            darks: dict[Path, set[Path]] = {}
+            yield from _walk(p, darks)
         elif not is_auxiliary(p):
             yield p
 
 
-def _walk(folder: Path) -> Iterator[Path]:
+def _walk(folder: Path, darks: dict[Path, set[Path]]) -> Iterator[Path]:
+    """Walk ``folder``; ``darks`` caches each visited folder's dark-frame references."""
     if scan.is_scan_folder(folder):
         yield folder
         return
@@ -179,20 +191,21 @@ def _walk(folder: Path) -> Iterator[Path]:
         children = sorted(folder.iterdir())
     except OSError:
         return
-    darks: set[Path] | None = None
+    darks[folder] = _dark_frames(folder)
     for child in children:
         if _ignored(child):
             continue
         if child.is_dir():
-            yield from _walk(child)
+            yield from _walk(child, darks)
             continue
         suffix = child.suffix.lower()
         if suffix == ".json" and is_auxiliary(child):
             continue
         if suffix in IMAGE_SUFFIXES:
-            if darks is None:
-                darks = _dark_frames(folder)
-            if child.resolve() in darks:
+            target = child.resolve()
+            # the sidecar naming a dark frame sits in its folder or a folder above
+            above = [folder, *list(folder.parents)[: DARK_SEARCH_LEVELS - 1]]
+            if any(target in (darks[f] if f in darks else darks.setdefault(f, _dark_frames(f))) for f in above):
                 continue
         yield child
 
@@ -221,8 +234,10 @@ def read_any(path: str | Path) -> tuple[str, Any]:
 
 
 __all__ = [
+    "DARK_SEARCH_LEVELS",
     "KINDS",
     "READERS",
+    "READER_VERSION",
     "bpm",
     "detect_kind",
     "is_auxiliary",

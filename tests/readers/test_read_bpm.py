@@ -190,3 +190,20 @@ def test_parquet_without_zone_or_with_text_positions_is_refused(tmp_path):
 def test_not_parquet_bytes_with_parquet_suffix(write):
     with pytest.raises(InputError, match=r"cannot read Parquet"):
         read_bpm(write("b.parquet", b"PAR1 not really"))
+
+
+def test_names_are_trimmed_so_padded_duplicates_are_caught(write):
+    df = read_bpm(write("a.csv", HEADER + "2026-11-30T06:00:00Z, BPM-01 ,1,2\n2026-11-30T06:00:01Z,BPM-01,1,2\n"))
+    assert df["bpm"].tolist() == ["BPM-01", "BPM-01"]
+    with pytest.raises(InputError, match=r"line 3: BPM 'BPM-01' repeats the time of line 2"):
+        read_bpm(write("b.csv", HEADER + "2026-11-30T06:00:00Z,BPM-01 ,1,2\n2026-11-30T06:00:00Z,BPM-01,1,2\n"))
+
+
+def test_extra_column_changing_type_between_blocks_is_kept_as_text(write, monkeypatch):
+    """Type inference per block fails; the slow path keeps the column as text and empty sums as NaN."""
+    lines = [f"2026-11-30T06:00:{k:02d}Z,BPM-01,1,2,,{k}\n" for k in range(40)]
+    lines[-1] = "2026-11-30T06:00:39Z,BPM-01,1,2,,late\n"
+    monkeypatch.setattr(_util, "BLOCK_SIZE", 256)
+    df = read_bpm(write("b.csv", "timestamp,bpm,x_mm,y_mm,sum,tag\n" + "".join(lines)))
+    assert df["tag"].tolist()[-2:] == ["38", "late"]
+    assert df["sum"].isna().all() and len(df) == 40

@@ -119,3 +119,16 @@ def test_dark_frame_named_twice_is_skipped_once(tmp_path):
         (tmp_path / f"{name}.json").write_text(json.dumps(
             {"device": "S", "timestamp": "2026-11-30T00:00:00Z", "pixel_size_m": 1e-5, "dark": "dark.png"}))
     assert [p.name for p in iter_inputs([tmp_path])] == ["a.png", "b.png"]
+
+
+def test_dark_frame_in_a_subfolder_is_auxiliary(tmp_path):
+    from PIL import Image
+
+    (tmp_path / "darks").mkdir()
+    Image.fromarray(np.zeros((2, 2), np.uint8)).save(tmp_path / "darks" / "SCR-01_dark.png")
+    Image.fromarray(np.ones((2, 2), np.uint8)).save(tmp_path / "a.png")
+    (tmp_path / "a.json").write_text(json.dumps(
+        {"device": "S", "timestamp": "2026-11-30T00:00:00Z", "pixel_size_m": 1e-5, "dark": "darks/SCR-01_dark.png"}))
+    assert is_auxiliary(tmp_path / "darks" / "SCR-01_dark.png")
+    assert [p.name for p in iter_inputs([tmp_path])] == ["a.png"]
+    assert read_any(tmp_path / "a.png")[1].dark is not None

@@ -75,3 +75,8 @@ def test_parquet_slow(tmp_path, good):
     ref = read_slow(good / "slow_small.csv")
     ref.to_parquet(tmp_path / "s.parquet")
     pd.testing.assert_frame_equal(read_slow(tmp_path / "s.parquet"), ref)
+
+
+def test_units_and_channels_are_trimmed(write):
+    df = read_slow(write("s.csv", HEADER + "2026-11-30T06:00:00Z,T-01 ,1,degC \n2026-11-30T06:01:00Z,T-01,2,degC\n"))
+    assert df["channel"].tolist() == ["T-01", "T-01"] and df["unit"].tolist() == ["degC", "degC"]
