@@ -918,7 +918,7 @@ class Store:
         table = _normalise_readings(_arrow_from_frame(df, what), schema, what)
         table = table.replace_schema_metadata({**schema.metadata, b"source": source.encode()})
         parts = _split_by_date(_sorted_by_time(table))
-        entries = self._write_files(kind, parts, sha256, row_group_size=READINGS_PER_ROW_GROUP)
+        entries = self._write_files(kind, parts, sha256, **_readings_write(table.schema))
         with self._catalog.connect() as con:
             self._catalog.register_files(con, entries, [sha256])
         return [self.root / e["path"] for e in entries]
@@ -1849,14 +1849,15 @@ class Store:
             ",".join("?" for _ in inputs) + ")", inputs)]
         current = self._current_scan_versions() if kind in ("profiles", "frames", "scans") else {}
         options = _FRAME_WRITE if kind == "frames" else (
-            {"row_group_size": READINGS_PER_ROW_GROUP} if kind in ("bpm", "slow") else {})
+            _readings_write(schema) if kind in ("bpm", "slow") else {})
         tmp = final.with_name(f".{final.stem}.{uuid.uuid4().hex[:12]}{TEMP_SUFFIX}")
         n_rows, tmin, tmax = 0, None, None
         try:
             with open(tmp, "wb") as fh:
-                writer = pq.ParquetWriter(fh, schema, compression=options.get("compression", "zstd"),
-                                          compression_level=options.get("compression_level", 1),
-                                          use_dictionary=options.get("use_dictionary", True))
+                writer = pq.ParquetWriter(
+                    fh, schema, compression=options.get("compression", "zstd"),
+                    compression_level=options.get("compression_level", 1),
+                    use_dictionary=options.get("use_dictionary", True))
                 for path in inputs:
                     table = pq.read_table(self.root / path)
                     if current:
@@ -1926,6 +1927,14 @@ class Store:
                         path.unlink()
                         n += 1
         return n
+
+
+def _readings_write(schema: pa.Schema) -> dict[str, Any]:
+    """Write options of readings: Snappy (fastest to write and to scan; zstd-1 took
+    2.3x longer to write for 30 % smaller files) and dictionaries for text only."""
+    return {"row_group_size": READINGS_PER_ROW_GROUP, "compression": "snappy",
+            "compression_level": None,
+            "use_dictionary": [f.name for f in schema if pa.types.is_string(f.type)]}
 
 
 # pixel bytes compress well with zstd (12-bit data in 16-bit words); no dictionaries
