@@ -116,6 +116,25 @@ class Step:
 
 
 @dataclass(frozen=True)
+class StepEvent:
+    """Steps of several BPM planes at the same time (within one step bucket).
+
+    ``time`` is the earliest member's; ``members`` are ``(bpm, plane, size_m)``
+    in line order.  ``message`` reads the pattern as METHODS.md section 5.3 does:
+    a step shared by many BPMs points to a kick or a magnet change, a step on a
+    single BPM to its electronics or mechanics.
+    """
+
+    time: pd.Timestamp
+    members: tuple[tuple[str, str, float], ...]
+    message: str = ""
+
+    @property
+    def bpms(self) -> tuple[str, ...]:
+        return tuple(dict.fromkeys(bpm for bpm, _, _ in self.members))
+
+
+@dataclass(frozen=True)
 class SpectralLine:
     """One line of an amplitude spectrum.
 
@@ -397,6 +416,8 @@ class OrbitReport:
     known_line_aliases : tuple of (float, float)
         ``(line_Hz, alias_Hz)`` of known lines above Nyquist.
     trends : OrbitTrends or None
+    step_events : tuple of StepEvent
+        Steps grouped by time across BPMs and planes.
     options : mapping
         The analysis options used.
     flags : tuple of str
@@ -420,6 +441,7 @@ class OrbitReport:
     violations: tuple[LimitViolation, ...]
     known_line_aliases: tuple[tuple[float, float], ...]
     trends: OrbitTrends | None = None
+    step_events: tuple[StepEvent, ...] = ()
     options: Mapping[str, object] = field(default_factory=dict)
     flags: tuple[str, ...] = ()
     message: str = ""
@@ -1845,6 +1867,50 @@ def transmission(
 # ---------------------------------------------------------------------------
 
 
+def group_steps(
+    steps: Sequence[tuple[str, str, Step]], *, tolerance_s: float = 10.0, bpms: Sequence[str] = ()
+) -> tuple[StepEvent, ...]:
+    """Group ``(bpm, plane, step)`` whose times lie within ``tolerance_s`` of the previous one."""
+    order = {b: i for i, b in enumerate(bpms)}
+    items = sorted(steps, key=lambda item: item[2].time)
+    groups: list[list[tuple[str, str, Step]]] = []
+    for item in items:
+        if groups and (item[2].time - groups[-1][-1][2].time).total_seconds() <= tolerance_s:
+            groups[-1].append(item)
+        else:
+            groups.append([item])
+    events = []
+    for group in groups:
+        members = sorted(
+            ((b, p, st.size_m) for b, p, st in group), key=lambda m: (order.get(m[0], len(order)), m[0], m[1])
+        )
+        n_bpms = len({b for b, _, _ in members})
+        if n_bpms == 1:
+            note = f"single BPM ({members[0][0]}): electronics or a mechanical change?"
+        else:
+            note = f"{n_bpms} BPMs together from {members[0][0]}: a kick or a magnet change?"
+        events.append(StepEvent(min(st.time for _, _, st in group), tuple(members), note))
+    return tuple(events)
+
+
+def three_bpm_resolution(upstream: np.ndarray, middle: np.ndarray, downstream: np.ndarray) -> tuple[float, float]:
+    """Resolution of the middle BPM of three equally spaced in a field-free drift.
+
+    ``sigma = rms(x2 - (x1 + x3) / 2) / sqrt(1.5)``, which assumes the three BPMs
+    have the same resolution (METHODS.md section 5.5; the beam moves on a straight
+    line between them).  Returns ``(sigma_m, sigma_err_m)``, the error being
+    ``sigma / sqrt(2 (N - 1))``.
+    """
+    r = np.asarray(middle, dtype=np.float64) - 0.5 * (
+        np.asarray(upstream, dtype=np.float64) + np.asarray(downstream, dtype=np.float64)
+    )
+    r = r[np.isfinite(r)]
+    if r.size < 3:
+        return math.nan, math.nan
+    sigma = float(np.std(r, ddof=1) / math.sqrt(1.5))
+    return sigma, sigma / math.sqrt(2.0 * (r.size - 1))
+
+
 def limit_intervals(
     starts_ns: np.ndarray, values: np.ndarray, limit: float, bucket_s: float
 ) -> list[tuple[pd.Timestamp, pd.Timestamp, float]]:
@@ -2225,6 +2291,11 @@ def analyze_orbit(
         violations=tuple(violations),
         known_line_aliases=aliases,
         trends=trends,
+        step_events=group_steps(
+            [(sm.bpm, sm.plane, st) for sm in summaries for st in sm.steps],
+            tolerance_s=step_bucket_s,
+            bpms=matrix.bpms,
+        ),
         options=options,
         flags=merge_flags(report_flags),
         message="; ".join(notes),
@@ -2266,6 +2337,7 @@ __all__ = [
     "SpectralLine",
     "Spectrum",
     "Step",
+    "StepEvent",
     "TransmissionPair",
     "alias_frequency",
     "analyze_orbit",
@@ -2275,6 +2347,7 @@ __all__ = [
     "detect_steps",
     "drift_matrix",
     "drift_rate",
+    "group_steps",
     "jitter_rms",
     "known_line_aliases",
     "marchenko_pastur_median",
@@ -2286,6 +2359,7 @@ __all__ = [
     "sampling_rate_Hz",
     "slow_on_buckets",
     "spectrum",
+    "three_bpm_resolution",
     "transmission",
 ]
 
@@ -2335,6 +2409,10 @@ def orbit_record(report: OrbitReport, *, n_mode_vectors: int = 3) -> dict[str, o
         "reference": {"start": jsonable(report.reference.start), "end": jsonable(report.reference.end)},
         "bpms": bpms,
         "steps": [{"bpm": b, "plane": p, **jsonable(s)} for b, p, s in report.steps],
+        "step_events": [
+            {"time": jsonable(e.time), "bpms": list(e.bpms), "members": jsonable(e.members), "message": e.message}
+            for e in report.step_events
+        ],
         "modes": modes,
         "correlations": jsonable(report.correlations),
         "transmission": jsonable(report.transmission),

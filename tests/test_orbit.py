@@ -503,3 +503,32 @@ def test_welch_power_matches_scipy_welch_spectrum_scaling(nperseg):
     f, p = orbit._welch_power(x, 7.0, nperseg)
     np.testing.assert_allclose(f, f_ref)
     np.testing.assert_allclose(p, p_ref, rtol=1e-10)
+
+
+def test_steps_of_several_bpms_at_one_time_form_one_event():
+    """A common 20 um step on BPM-02..04 at 30:00 and a lone 15 um step on BPM-01 at 45:00."""
+    rng = np.random.default_rng(31)
+    n = 60 * 60 * 10
+    t_s = np.arange(n) / 10.0
+    x = rng.normal(0, 1 * UM, (n, 4))
+    x[t_s >= 1800, 1:] += 20 * UM
+    x[t_s >= 2700, 0] += 15 * UM
+    report = orbit.analyze_orbit(_table(_times(n, 10.0), x, rng.normal(0, 1 * UM, (n, 4))))
+    first, second = report.step_events
+    assert first.bpms == ("BPM-02", "BPM-03", "BPM-04")
+    assert abs((first.time - START).total_seconds() - 1800) < 1
+    assert "3 BPMs" in first.message
+    assert second.bpms == ("BPM-01",) and "single BPM" in second.message
+    assert [m[2] for m in first.members] == pytest.approx([20 * UM] * 3, rel=0.05)
+
+
+def test_three_bpm_resolution_matches_methods_check_value():
+    """METHODS.md 6.5: 5 um noise per BPM, equal drift spacing: rms(x2 - (x1+x3)/2)/sqrt(1.5) = 5 um
+    within statistics (2e5 samples: relative spread 1/sqrt(2N) = 0.16 %, 1 % allowed)."""
+    rng = np.random.default_rng(1)
+    n = 200_000
+    x0, slope = rng.normal(0, 1e-3, n), rng.normal(0, 1e-4, n)  # beam position and angle per pulse
+    positions = [x0 + slope * z + rng.normal(0, 5 * UM, n) for z in (0.0, 2.0, 4.0)]
+    sigma, err = orbit.three_bpm_resolution(*positions)
+    assert sigma == pytest.approx(5 * UM, rel=0.01)
+    assert err == pytest.approx(sigma / math.sqrt(2 * (n - 1)))
