@@ -746,18 +746,25 @@ def ingested_items(store: Any, kind: str, outcomes: Sequence[Any]) -> list[tuple
     index_of = store.profile_index if kind == "profiles" else store.frame_index
     index = index_of(start=min(times), end=max(times) + pd.Timedelta(1, "ns"))
     index = index[index["sha256"].isin(list(objects))]
+    rows_of: dict[str, list[tuple[str, Any, Any]]] = {}
+    for row in index[["sha256", "id", "scan", "step"]].itertuples(index=False):
+        rows_of.setdefault(row.sha256, []).append((str(row.id), row.scan, row.step))
     items = []
-    for sha, group in index.groupby("sha256", sort=False):
-        rows = group.sort_values("id").to_dict("records")
-        objs = objects[sha]
+    for sha, objs in objects.items():
+        rows = rows_of.get(sha, [])
         if len(rows) != len(objs):
             raise RuntimeError(f"{kind}: {len(objs)} item(s) read from the input of sha256 {sha[:16]} but "
-                               f"{len(rows)} stored")
-        # the store numbers an input's items in reading order: <sha16>-<i>
-        rows.sort(key=lambda r: int(str(r["id"]).rsplit("-", 1)[-1]) if str(r["id"]).rsplit("-", 1)[-1].isdigit()
-                  else 0)
-        items.extend((str(r["id"]), o, _extra(r)) for r, o in zip(rows, objs, strict=True))
+                               f"{len(rows)} found in the store")
+        # the store numbers an input's items in reading order (<sha16>-<i>)
+        rows.sort(key=lambda r: _item_number(r[0]))
+        items.extend((rid, o, {"scan": _clean(scan), "step": _clean(step)})
+                     for (rid, scan, step), o in zip(rows, objs, strict=True))
     return items
+
+
+def _item_number(item_id: str) -> int:
+    tail = item_id.rsplit("-", 1)[-1]
+    return int(tail) if tail.isdigit() else 0
 
 
 def analyze_ingested(store: Any, outcomes: Sequence[Any], *, options: AnalysisOptions | Mapping | None = None,

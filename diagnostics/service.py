@@ -70,6 +70,7 @@ import threading
 import time
 import uuid
 from collections.abc import Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -117,15 +118,30 @@ def _iso(t: pd.Timestamp | None) -> str | None:
     return None if t is None else t.isoformat().replace("+00:00", "Z")
 
 
-def write_json_atomic(path: Path, data: Mapping[str, Any]) -> None:
-    """Write JSON to ``path`` through a temporary file and ``os.replace`` (never half a file)."""
+def write_json_atomic(path: Path, data: Mapping[str, Any], *, durable: bool = True) -> None:
+    """Write JSON to ``path`` through a temporary file and ``os.replace`` (never half a file).
+
+    ``durable`` also flushes it to disk (``fsync``) before the rename, so it survives
+    a power cut as well as a crash of the process.
+    """
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
     with open(tmp, "w", encoding="utf-8") as fh:
         json.dump(data, fh, indent=1, sort_keys=True)
-        fh.flush()
-        os.fsync(fh.fileno())
+        if durable:
+            fh.flush()
+            os.fsync(fh.fileno())
     os.replace(tmp, path)
+
+
+def _remove_tree(folder: Path) -> None:
+    """Remove a unit folder: a manifest, copies of dark frames and empty folders."""
+    with contextlib.suppress(FileNotFoundError):
+        (folder / UNIT_MANIFEST).unlink()
+    try:
+        folder.rmdir()
+    except OSError:
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 def heartbeat_path(store_root: str | os.PathLike) -> Path:
@@ -247,6 +263,8 @@ class WatchConfig:
         period after start, and a compaction also runs when the UTC day changes.
     max_batch : int
         Most inputs handled in one cycle (keeps the heartbeat fresh).
+    ingest_threads : int
+        Inputs ingested at the same time (their waits on disk and catalog overlap).
     options : AnalysisOptions
     """
 
@@ -259,6 +277,7 @@ class WatchConfig:
     orbit_interval: str = "10min"
     compact_every_s: float = 3600.0
     max_batch: int = 200
+    ingest_threads: int = 3
     options: pipeline.AnalysisOptions = field(default_factory=pipeline.AnalysisOptions)
 
     def __post_init__(self) -> None:
@@ -268,6 +287,8 @@ class WatchConfig:
                 raise InputError(f"watch: --{name.replace('_s', '').replace('_', '-')} must be >= 0, got {value!r}")
         if self.interval_s <= 0:
             raise InputError(f"watch: --interval must be > 0 seconds, got {self.interval_s!r}")
+        if not isinstance(self.ingest_threads, int) or self.ingest_threads < 1:
+            raise InputError(f"watch: ingest_threads must be >= 1, got {self.ingest_threads!r}")
         if self.max_batch < 1:
             raise InputError(f"watch: max_batch must be >= 1, got {self.max_batch!r}")
         try:
@@ -323,6 +344,7 @@ class WatchService:
         for sub in (WORK_DIR, DONE_DIR, QUARANTINE_DIR):
             (self.inbox / sub).mkdir(parents=True, exist_ok=True)
         self._catalog_hold = self._hold_catalog()
+        self._pool = ThreadPoolExecutor(max_workers=self.config.ingest_threads, thread_name_prefix="ingest")
 
     def _hold_catalog(self) -> sqlite3.Connection | None:
         """Keep one idle connection to the store's catalog open while the service runs.
@@ -644,10 +666,12 @@ class WatchService:
                     dark = self._sidecar_dark(member)
                     if dark is not None and dark not in unit.members:
                         darks.append(dark)
+        # not fsync'ed: after a power cut a unit folder without its manifest is handed
+        # back to the inbox whole (see _work_units), so nothing depends on it being on disk
         write_json_atomic(work / UNIT_MANIFEST, {
             "kind": unit.kind, "rel": unit.rel, "members": list(unit.members), "darks": darks,
             "claimed": _iso(_now_utc()),
-        })
+        }, durable=False)
         moved = self._move_members(work, unit.members, darks)
         if not moved:
             shutil.rmtree(work, ignore_errors=True)
@@ -686,8 +710,9 @@ class WatchService:
                 with open(work / UNIT_MANIFEST, encoding="utf-8") as fh:
                     manifest = json.load(fh)
             except (FileNotFoundError, json.JSONDecodeError, UnicodeDecodeError):
-                # crashed before the manifest was whole: nothing was moved yet
-                shutil.rmtree(work, ignore_errors=True)
+                # no manifest (crash right after mkdir, or a power cut lost it): give
+                # whatever is inside back to the inbox, where it will be found again
+                self._unclaim(work)
                 continue
             status = work.suffix.lstrip(".")
             if status in FINISHED:
@@ -702,6 +727,17 @@ class WatchService:
                 continue
             out.append((work, manifest))
         return out
+
+    def _unclaim(self, work: Path) -> None:
+        for path in sorted(p for p in work.rglob("*") if p.is_file()):
+            rel = path.relative_to(work)
+            if rel.name.startswith("."):
+                continue
+            target = self.inbox / rel
+            if not target.exists():
+                target.parent.mkdir(parents=True, exist_ok=True)
+                os.rename(path, target)
+        shutil.rmtree(work, ignore_errors=True)
 
     # ---------------------------------------------------------------- finishing
     def _finish(self, work: Path, manifest: Mapping[str, Any], status: str) -> None:
@@ -723,7 +759,7 @@ class WatchService:
                 dst = self._unique(self.inbox / DONE_DIR / member)
             dst.parent.mkdir(parents=True, exist_ok=True)
             os.rename(src, dst)
-        shutil.rmtree(work, ignore_errors=True)
+        _remove_tree(work)
 
     # ---------------------------------------------------------------- processing
     def _ingest(self, work: Path, manifest: Mapping[str, Any]) -> Any:
@@ -733,9 +769,14 @@ class WatchService:
     def process(self, units: Sequence[tuple[Path, Mapping[str, Any]]], *, recovering: bool = False) -> int:
         """Ingest, analyse and finish claimed units; return how many were handled."""
         handled: list[tuple[Path, Mapping[str, Any], Any]] = []
-        for work, manifest in units:
+        # ingests overlap their file-system and catalog waits in a few threads; the
+        # store opens one catalog connection per operation, and SQLite serialises writers
+        futures = [(work, manifest, self._pool.submit(self._ingest, work, manifest)) for work, manifest in units]
+        for work, manifest, future in futures:
+            if self.stopping and not recovering and future.cancel():
+                continue  # not started: stays in .work and is taken first at the next start
             try:
-                outcome = self._ingest(work, manifest)
+                outcome = future.result()
             except Exception as exc:  # the store promises not to raise for bad input; keep going
                 self.stats.errors += 1
                 self.stats.last_error = f"{manifest.get('rel')}: {type(exc).__name__}: {exc}"
@@ -750,8 +791,6 @@ class WatchService:
             elif status == "quarantined":
                 self.stats.quarantined += 1
                 self.log(f"quarantined {manifest.get('rel')}: {getattr(outcome, 'message', '')}")
-            if self.stopping and not recovering:
-                break
         outcomes = [o for _w, _m, o in handled if getattr(o, "status", "") in ("stored", "duplicate")]
         if outcomes:
             try:
@@ -914,6 +953,7 @@ class WatchService:
         finally:
             if self._observer is not None:
                 self._observer.stop()
+            self._pool.shutdown(wait=True, cancel_futures=True)
             if self._catalog_hold is not None:
                 self._catalog_hold.close()
             with contextlib.suppress(OSError):

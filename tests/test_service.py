@@ -360,3 +360,274 @@ def test_config_rejects_nonsense():
         WatchConfig(interval_s=0)
     with pytest.raises(InputError, match="orbit"):
         WatchConfig(orbit_interval="soon")
+
+
+# ============================================================================ end to end
+# The real service in a subprocess over the real store.
+
+import signal  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+
+REPO = Path(__file__).resolve().parents[1]
+
+BPMS = tuple(f"BPM-{i:02d}" for i in range(1, 25))
+T_START = pd.Timestamp("2026-11-30T09:00:00Z")
+
+
+def bpm_csv(i: int, rng: np.random.Generator) -> bytes:
+    """One BPM file: the 24 BPMs of the Kestrel Bay line at one time (i-th tenth of a second)."""
+    t = (T_START + pd.Timedelta(100 * i, "ms")).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
+    x = rng.normal(0.0, 0.05, len(BPMS))
+    y = rng.normal(0.0, 0.05, len(BPMS))
+    lines = ["timestamp,bpm,x_mm,y_mm,sum"]
+    lines += [f"{t},{b},{xv:.5f},{yv:.5f},{1.0 + 0.001 * k:.4f}" for k, (b, xv, yv) in enumerate(zip(BPMS, x, y, strict=True))]
+    return ("\n".join(lines) + "\n").encode()
+
+
+def frame_files(i: int, rng: np.random.Generator, size: int = 64) -> tuple[bytes, bytes, np.ndarray]:
+    """A small 16-bit screen image (Gaussian spot, Poisson noise) and its sidecar."""
+    from io import BytesIO
+
+    from PIL import Image
+
+    yy, xx = np.mgrid[0:size, 0:size]
+    cx, cy = size / 2 + rng.normal(0, 1), size / 2 + rng.normal(0, 1)
+    spot = 2000.0 * np.exp(-0.5 * (((xx - cx) / 5.0) ** 2 + ((yy - cy) / 4.0) ** 2))
+    pixels = rng.poisson(100.0 + spot).astype(np.uint16)
+    buf = BytesIO()
+    Image.fromarray(pixels).save(buf, format="PNG")
+    t = (T_START + pd.Timedelta(100 * i + 50, "ms")).isoformat().replace("+00:00", "Z")
+    sidecar = json.dumps({"device": "SCR-01", "timestamp": t, "pixel_size_m": [2.0e-5, 2.0e-5], "bit_depth": 12})
+    return buf.getvalue(), sidecar.encode(), pixels
+
+
+class Producer:
+    """Writes BPM files and screen frames into an inbox at fixed rates, as producers should
+    (NAME.part, then rename), from a thread; remembers everything it wrote."""
+
+    def __init__(self, inbox: Path, *, seconds: float, rate_hz: float = 10.0, seed: int = 1) -> None:
+        self.inbox = inbox
+        self.n = int(round(seconds * rate_hz))
+        self.period = 1.0 / rate_hz
+        rng = np.random.default_rng(seed)
+        self.bpm = [bpm_csv(i, rng) for i in range(self.n)]
+        self.frames = [frame_files(i, rng) for i in range(self.n)]
+        self.written = 0
+        self.late_s = 0.0
+        self.thread = threading.Thread(target=self._run, daemon=True)
+        self.extra: list[tuple[float, callable]] = []
+
+    def _put(self, name: str, data: bytes) -> None:
+        part = self.inbox / f"{name}.part"
+        part.write_bytes(data)
+        os.rename(part, self.inbox / name)
+
+    def _run(self) -> None:
+        t0 = time.monotonic()
+        for i in range(self.n):
+            due = t0 + i * self.period
+            delay = due - time.monotonic()
+            if delay > 0:
+                time.sleep(delay)
+            else:
+                self.late_s = max(self.late_s, -delay)
+            self._put(f"bpm_{i:05d}.csv", self.bpm[i])
+            png, sidecar, _ = self.frames[i]
+            self._put(f"scr_{i:05d}.json", sidecar)
+            self._put(f"scr_{i:05d}.png", png)
+            self.written = i + 1
+            while self.extra and self.extra[0][0] <= time.monotonic() - t0:
+                self.extra.pop(0)[1]()
+
+    def start(self) -> Producer:
+        self.thread.start()
+        return self
+
+    def join(self) -> None:
+        self.thread.join()
+
+
+def start_watch(inbox: Path, store: Path, *extra: str) -> subprocess.Popen:
+    cmd = [sys.executable, "-m", "diagnostics", "watch", str(inbox), "--store", str(store), *extra]
+    log = open(store.parent / "watch.log", "a")  # noqa: SIM115
+    return subprocess.Popen(cmd, cwd=REPO, stdout=log, stderr=subprocess.STDOUT)
+
+
+def wait_for(predicate, timeout: float, step: float = 0.2) -> bool:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if predicate():
+            return True
+        time.sleep(step)
+    return predicate()
+
+
+def inbox_empty(inbox: Path) -> bool:
+    names = [p for p in inbox.iterdir() if p.name not in (".work", "done", "quarantined")]
+    return not names and not any((inbox / ".work").iterdir())
+
+
+def check_store_equals_input(store_dir: Path, producer: Producer) -> dict:
+    """Every reading stored exactly once: counts, values and pixel checksums."""
+    from diagnostics.readers.bpm import read_bpm
+    from diagnostics.store import Store
+
+    store = Store(store_dir)
+    tmp = store_dir.parent / "expected"
+    tmp.mkdir(exist_ok=True)
+    expected = []
+    for i, data in enumerate(producer.bpm):
+        path = tmp / f"bpm_{i:05d}.csv"
+        path.write_bytes(data)
+        expected.append(read_bpm(path))
+    expected = pd.concat(expected).sort_values(["timestamp", "bpm"]).reset_index(drop=True)
+    got = store.read_bpm()
+    assert len(got) == len(expected) == 24 * producer.n
+    pd.testing.assert_frame_equal(got[["timestamp", "bpm", "x_m", "y_m", "sum"]].reset_index(drop=True),
+                                  expected[["timestamp", "bpm", "x_m", "y_m", "sum"]], check_dtype=False)
+    index = store.frame_index()
+    assert len(index) == producer.n and index["id"].is_unique
+    want = sorted(hashlib.sha256(px.tobytes()).hexdigest() for _, _, px in producer.frames)
+    have = sorted(hashlib.sha256(np.ascontiguousarray(f.pixels).tobytes()).hexdigest()
+                  for f in store.read_frames())
+    assert have == want
+    results = store.read_results("frames", version="all")
+    assert len(results) == producer.n, "one image result per frame, no more, no fewer"
+    assert results["frame_id"].is_unique
+    assert set(results["frame_id"]) == set(index["id"])
+    return {"bpm_rows": len(got), "frames": len(index), "results": len(results)}
+
+
+def _heartbeat_lag(store_dir: Path) -> float | None:
+    beat = read_heartbeat(store_dir)
+    return None if beat is None else beat["lag_s"]
+
+
+@pytest.mark.slow
+def test_load_with_three_sigkills_stores_every_reading_exactly_once(tmp_path):
+    """(a)+(b): 10 BPM files/s and 10 frames/s for 60 s, written .part-then-rename.
+
+    First 30 s fault-free: the service must keep up (heartbeat lag under 5 s at the
+    end of it).  Then SIGKILL at three seeded random moments, restarting each time.
+    At the end the store equals the input: BPM rows (values), frames (pixel
+    checksums) and one image result per frame.
+    """
+    inbox, store_dir = tmp_path / "inbox", tmp_path / "store"
+    inbox.mkdir()
+    producer = Producer(inbox, seconds=60.0, seed=11)
+    proc = start_watch(inbox, store_dir, "--events", "--interval", "2", "--stable-seconds", "4")
+    assert wait_for(lambda: read_heartbeat(store_dir) is not None, 60), "service did not start"
+    t0 = time.monotonic()
+    producer.start()
+    lags = []
+    rng = np.random.default_rng(20261130)
+    kill_at = sorted(rng.uniform(33.0, 57.0, 3))
+    kills = 0
+    while producer.thread.is_alive():
+        elapsed = time.monotonic() - t0
+        if elapsed < 30.0:
+            lag = _heartbeat_lag(store_dir)
+            if lag is not None and elapsed > 5.0:
+                lags.append((elapsed, lag))
+        elif kills < len(kill_at) and elapsed >= kill_at[kills]:
+            proc.send_signal(signal.SIGKILL)
+            proc.wait(30)
+            kills += 1
+            proc = start_watch(inbox, store_dir, "--events", "--interval", "2", "--stable-seconds", "4")
+        time.sleep(0.25)
+    producer.join()
+    t_end = time.monotonic()
+    drained = wait_for(lambda: inbox_empty(inbox), 90)
+    drain_s = time.monotonic() - t_end
+    proc.send_signal(signal.SIGTERM)
+    rc = proc.wait(60)
+    log = (tmp_path / "watch.log").read_text()
+    assert drained, f"inbox not drained; log tail: {log[-2000:]}"
+    assert rc == 0, log[-2000:]
+    assert kills == 3
+    late = [lag for t, lag in lags if t >= 25.0]
+    assert late and max(late) < 5.0, f"service fell behind: lags {lags}"
+    counts = check_store_equals_input(store_dir, producer)
+    assert counts["bpm_rows"] == 24 * 600
+    beat = read_heartbeat(store_dir)
+    print(f"\nload: {2 * producer.n / 60.0:.1f} inputs/s for 60 s; lag (5-30 s) max "
+          f"{max(lag for _, lag in lags):.2f} s, at 25-30 s max {max(late):.2f} s; drain after the end "
+          f"{drain_s:.1f} s; restarts survived {kills}; producer max lateness {producer.late_s:.2f} s; "
+          f"last heartbeat {beat['files_processed']} inputs in its run")
+
+
+def _bad_inputs(inbox: Path) -> dict[str, bytes]:
+    png, sidecar, _ = frame_files(0, np.random.default_rng(3))
+    bad = {
+        "empty.csv": b"",
+        "text_in_number.csv": b"timestamp,bpm,x_mm,y_mm\n2026-11-30T09:00:00Z,BPM-01,abc,0.1\n",
+        "not_a_png.png": b"this is text, not an image",
+        "not_a_png.json": sidecar,
+        "no_sidecar.png": png,
+    }
+    for name, data in bad.items():
+        _put_renamed(inbox, name, data)
+    return bad
+
+
+def test_bad_inputs_are_quarantined_and_the_service_goes_on(tmp_path):
+    """(c): empty CSV, text in a numeric column, a non-PNG .png, an image without sidecar."""
+    inbox, store_dir = tmp_path / "inbox", tmp_path / "store"
+    inbox.mkdir()
+    proc = start_watch(inbox, store_dir, "--interval", "0.5", "--stable-seconds", "1", "--sidecar-wait", "2")
+    try:
+        assert wait_for(lambda: read_heartbeat(store_dir) is not None, 60)
+        _bad_inputs(inbox)
+        rng = np.random.default_rng(5)
+        _put_renamed(inbox, "good.csv", bpm_csv(0, rng))
+        # the image without a sidecar waits --sidecar-wait (2 s) before it is judged
+        assert wait_for(lambda: inbox_empty(inbox), 60), sorted(p.name for p in inbox.iterdir())
+        _put_renamed(inbox, "good2.csv", bpm_csv(1, rng))  # still alive and working
+        assert wait_for(lambda: (inbox / "done" / "good2.csv").exists(), 30)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        rc = proc.wait(60)
+    assert rc == 0
+    quarantined = sorted(p.name for p in (inbox / "quarantined").iterdir())
+    assert quarantined == sorted(["empty.csv", "text_in_number.csv", "not_a_png.png", "not_a_png.json",
+                                  "no_sidecar.png"])
+    from diagnostics.store import Store
+
+    store = Store(store_dir)
+    reasons = store.quarantine_list()
+    assert len(reasons) == 4 and all(reasons["reason"].str.len() > 0)
+    assert len(store.read_bpm()) == 48
+    beat = read_heartbeat(store_dir)
+    assert beat["quarantined"] == 4 and beat["state"] == "stopped"
+
+
+def test_slowly_growing_file_is_not_ingested_half_written(tmp_path):
+    """(d): a BPM file appended to over several seconds (no .part) is stored whole."""
+    inbox, store_dir = tmp_path / "inbox", tmp_path / "store"
+    inbox.mkdir()
+    proc = start_watch(inbox, store_dir, "--interval", "0.5", "--stable-seconds", "2")
+    try:
+        assert wait_for(lambda: read_heartbeat(store_dir) is not None, 60)
+        rng = np.random.default_rng(8)
+        blocks = [bpm_csv(i, rng).split(b"\n", 1)[1] for i in range(6)]
+        path = inbox / "growing.csv"
+        with open(path, "wb") as fh:
+            fh.write(b"timestamp,bpm,x_mm,y_mm,sum\n")
+            for block in blocks:
+                fh.write(block)
+                fh.flush()
+                time.sleep(0.9)  # under --stable-seconds: the writer is still busy
+        assert wait_for(lambda: (inbox / "done" / "growing.csv").exists(), 30)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        rc = proc.wait(60)
+    assert rc == 0
+    from diagnostics.store import Store
+
+    store = Store(store_dir)
+    assert len(store.read_bpm()) == 24 * 6
+    assert len(store.quarantine_list()) == 0

@@ -34,6 +34,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                         help="seconds between orbit summaries, 0 to disable (default 600)")
     parser.add_argument("--orbit-interval", default="10min", metavar="SPAN",
                         help="span of each orbit summary, e.g. 10min or 1h (default 10min)")
+    parser.add_argument("--sidecar-wait", type=float, default=10.0, metavar="S",
+                        help="how long an image waits for its JSON sidecar before it is judged alone (default 10)")
     parser.add_argument("--compact-every", type=float, default=3600.0, metavar="S",
                         help="seconds between store compactions, 0 to disable (default 3600)")
     parser.set_defaults(func=run)
@@ -46,7 +48,7 @@ def run(args: argparse.Namespace) -> int:
         config = service.WatchConfig(
             interval_s=args.interval, stable_seconds=args.stable_seconds, delete=args.delete,
             events=args.events, orbit_every_s=args.orbit_every, orbit_interval=args.orbit_interval,
-            compact_every_s=args.compact_every, options=AnalysisOptions(),
+            compact_every_s=args.compact_every, sidecar_wait_s=args.sidecar_wait, options=AnalysisOptions(),
         )
     except ValueError as exc:
         if isinstance(exc, InputError):
