@@ -11,6 +11,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from diagnostics.errors import InputError
 from diagnostics.measurements import BPM_COLUMNS
@@ -207,3 +209,24 @@ def test_extra_column_changing_type_between_blocks_is_kept_as_text(write, monkey
     df = read_bpm(write("b.csv", "timestamp,bpm,x_mm,y_mm,sum,tag\n" + "".join(lines)))
     assert df["tag"].tolist()[-2:] == ["38", "late"]
     assert df["sum"].isna().all() and len(df) == 40
+
+
+@settings(max_examples=80, deadline=None)
+@given(rows=st.lists(st.tuples(st.integers(0, 6), st.sampled_from(["BPM-01", "BPM-02", "BPM-03"])),
+                     min_size=1, max_size=15))
+def test_order_rules_match_a_pandas_groupby_reference(tmp_path_factory, rows):
+    """Accepted iff every BPM's times strictly increase in file order (pandas groupby as reference);
+    an accepted file comes back as pandas' stable sort by time."""
+    path = tmp_path_factory.mktemp("order") / "b.csv"
+    path.write_text(HEADER + "".join(f"2026-11-30T06:00:{t:02d}Z,{b},{i},0\n" for i, (t, b) in enumerate(rows)))
+    ref = pd.DataFrame(rows, columns=["t", "bpm"])
+    valid = bool(ref.groupby("bpm")["t"].apply(lambda s: bool((s.diff().dropna() > 0).all())).all())
+    if not valid:
+        with pytest.raises(InputError, match=r"(repeats the time of|time goes backwards from) line \d+"):
+            read_bpm(path)
+        return
+    df = read_bpm(path)
+    expected = ref.sort_values("t", kind="stable").reset_index(drop=True)
+    assert df["bpm"].tolist() == expected["bpm"].tolist()
+    file_rows = np.argsort([t for t, _ in rows], kind="stable")  # x_mm holds the file row number
+    np.testing.assert_array_equal(df["x_m"].to_numpy(), file_rows * 1e-3)
