@@ -532,3 +532,74 @@ def test_three_bpm_resolution_matches_methods_check_value():
     sigma, err = orbit.three_bpm_resolution(*positions)
     assert sigma == pytest.approx(5 * UM, rel=0.01)
     assert err == pytest.approx(sigma / math.sqrt(2 * (n - 1)))
+
+
+# ---------------------------------------------------------------------------
+# the demo scenario (diagnostics.demo: the true values are known by construction)
+# ---------------------------------------------------------------------------
+
+
+def _demo_tables(start_s: float, hours: float, rate_Hz: float, seed: int = 2):
+    from diagnostics import demo
+
+    rng = np.random.default_rng(seed)
+    t = start_s + np.arange(int(hours * 3600 * rate_Hz)) / rate_Hz
+    model = demo.bpm_model(t, rng)
+    times = START + pd.to_timedelta(np.round(t * 1e9).astype(np.int64), unit="ns")
+    n = len(demo.BPMS)
+    bpm = pd.DataFrame(
+        {
+            "timestamp": np.repeat(times, n),
+            "bpm": np.tile(np.array(demo.BPMS), t.size),
+            "x_m": model["x_m"].ravel(),
+            "y_m": model["y_m"].ravel(),
+            "sum": model["sum"].ravel(),
+        }
+    )
+    ts = np.arange(start_s, start_s + hours * 3600, 10.0)
+    temps = demo.temperatures_degC(ts, rng)
+    slow = pd.DataFrame(
+        {
+            "timestamp": np.repeat(START + pd.to_timedelta(ts, unit="s"), 4),
+            "channel": np.tile(list(demo.TEMPERATURE_SENSORS), ts.size),
+            "value": temps.ravel(),
+            "unit": "degC",
+        }
+    )
+    return demo, bpm, slow
+
+
+def test_demo_events_recovered_between_10_and_12():
+    """Demo scenario, 10:00-12:00 at 10 Hz: the 35 um corrector step at 10:42:00 on BPM-09
+    onward (x only), the 1.8 Hz line of 3 and 4 um on BPM-05/06, and the 2 % loss between
+    BPM-15 and BPM-16 from 11:20 to 11:35; nothing else."""
+    demo, bpm, _ = _demo_tables(4 * 3600, 2.0, 10.0)
+    report = orbit.analyze_orbit(bpm)
+    (event,) = report.step_events
+    assert event.time == pd.Timestamp("2026-11-30T10:42:00Z")
+    assert event.bpms == demo.BPMS[8:]
+    assert {plane for _, plane, _ in event.members} == {"x"}
+    assert report.summary("BPM-09", "x").steps[0].size_m == pytest.approx(35e-6, rel=0.2)
+    for name, amp in demo.VIBRATION["amplitude_x_m"].items():
+        s = report.summary(name, "x")
+        assert abs(s.peak_frequency_Hz - 1.8) <= 10.0 / 1024
+        assert s.peak_amplitude_m == pytest.approx(amp, rel=0.05)
+    (loss,) = report.loss_events
+    assert (loss.upstream, loss.downstream) == ("BPM-15", "BPM-16")
+    assert loss.start == pd.Timestamp("2026-11-30T11:20:00Z")
+    assert loss.end == pd.Timestamp("2026-11-30T11:35:00Z")
+    assert loss.size == pytest.approx(0.02, rel=0.05)
+
+
+def test_demo_thermal_drift_follows_its_sensor_with_the_25_minute_lag():
+    """Demo scenario, whole shift at 1 Hz: BPM-17 x follows T-03 at 28 um/K, 25 min later
+    (THERMAL_LAG_S); slope within 20 % (brief), lag within 2 min.  At 1 Hz the 1.8 Hz
+    line aliases to |1.8 - 2 * 1| = 0.2 Hz, where it is found."""
+    demo, bpm, slow = _demo_tables(0.0, 8.0, 1.0)
+    report = orbit.analyze_orbit(bpm, slow_df=slow)
+    corr = next(c for c in report.correlations if (c.bpm, c.plane, c.channel) == ("BPM-17", "x", "T-03"))
+    assert corr.slope_m_per_unit == pytest.approx(demo.WORST_THERMAL_COEFF_M_PER_K, rel=0.2)
+    assert corr.lag_s == pytest.approx(demo.THERMAL_LAG_S, abs=120)
+    assert corr.pearson_r > 0.9
+    s = report.summary("BPM-06", "x")
+    assert abs(s.peak_frequency_Hz - orbit.alias_frequency(1.8, 1.0)) <= 1.0 / 256
