@@ -37,7 +37,7 @@ see a sidecar before its image arrives, so it should wait for both).
 from __future__ import annotations
 
 import json
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -60,7 +60,7 @@ DARK_SEARCH_LEVELS = 3
 KINDS = ("profiles", "frames", "bpm", "slow", "scans")
 
 #: The reader of each kind.
-READERS = {
+READERS: dict[str, Callable[[Path], Any]] = {
     "profiles": read_profile,
     "frames": read_frame,
     "bpm": read_bpm,

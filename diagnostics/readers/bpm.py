@@ -98,9 +98,11 @@ def read_bpm(path: str | Path) -> pd.DataFrame:
 
     _util.check_no_nulls(table, ["timestamp", units["x"], units["y"]], p, row_name)
     codes, bpms, bpm_text = _util.text_codes(table, "bpm")
-    if "" in bpms or table.column("bpm").null_count:
-        i = int(np.argmax(codes == bpms.index(""))) if "" in bpms else _util.first_null(table, "bpm")
-        raise located(p, f"{row_name(i)}: column 'bpm' is empty (expected a BPM name)")
+    empty = _util.first_null(table, "bpm")
+    if empty is None and "" in bpms:
+        empty = int(np.argmax(codes == bpms.index("")))
+    if empty is not None:
+        raise located(p, f"{row_name(empty)}: column 'bpm' is empty (expected a BPM name)")
 
     out: dict[str, pa.Array | pa.ChunkedArray] = {"timestamp": table.column("timestamp"), "bpm": bpm_text}
     for plane in ("x", "y"):

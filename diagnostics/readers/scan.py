@@ -178,7 +178,7 @@ def read_scan(folder: str | Path) -> ScanSpec:
     return ScanSpec(kind=kind, name=name.strip(), timestamp=timestamp, particle=particle,  # type: ignore[arg-type]
                     kinetic_energy_MeV=energy, magnet=magnet, transport_x=transport_x,
                     transport_y=transport_y, monitors=monitors, steps=steps, design=design,
-                    energy_spread=spread, expected_steps=expected, complete=complete, folder=str(folder))
+                    energy_spread=spread, expected_steps=expected, complete=complete, folder=str(base))
 
 
 @dataclasses.dataclass(frozen=True)

@@ -73,9 +73,11 @@ def read_slow(path: str | Path) -> pd.DataFrame:
 
     _util.check_no_nulls(table, ["timestamp", "value", "unit"], p, row_name)
     codes, channels, channel_text = _util.text_codes(table, "channel")
-    if "" in channels or table.column("channel").null_count:
-        i = int(np.argmax(codes == channels.index(""))) if "" in channels else _util.first_null(table, "channel")
-        raise located(p, f"{row_name(i)}: column 'channel' is empty (expected a channel name)")
+    empty = _util.first_null(table, "channel")
+    if empty is None and "" in channels:
+        empty = int(np.argmax(codes == channels.index("")))
+    if empty is not None:
+        raise located(p, f"{row_name(empty)}: column 'channel' is empty (expected a channel name)")
     _util.check_finite(table.column("value"), p, "value", row_name)
     unit_codes, units, unit_text = _util.text_codes(table, "unit")
     _check_one_unit(codes, channels, unit_codes, units, p, row_name)
