@@ -65,7 +65,8 @@ EMITTANCE_METHODS = _emittance.EMITTANCE_METHODS
 #: How profiles are fitted: ``single`` calls ``analyze_profile`` per profile,
 #: ``batch`` uses ``fit_profiles_batch`` on all same-length profiles of one stored
 #: file at once (Gaussian model only), ``auto`` uses ``batch`` for the Gaussian
-#: model when the batch fitter is available and ``single`` otherwise.
+#: model and gives any profile the batch could not fit a second try with the single
+#: fitter, and uses ``single`` for the other models.
 PROFILE_FITTERS = ("auto", "single", "batch")
 
 
@@ -356,22 +357,32 @@ def analyze_profile_items(items: Sequence[tuple[str, Any, Mapping[str, Any]]],
                     records[i] = failed_record("profile_id", pid, reason=reason, device=prof.device,
                                                plane=prof.plane, timestamp=_iso(prof.timestamp),
                                                source=prof.source, **extra)
+                elif options.fitter == "auto" and "fit_failed" in res.flags:
+                    records[i] = None  # refitted one by one below
                 else:
                     records[i] = profile_record(pid, prof, res, fitter="batch", **extra)
+        # "auto": a profile the batch could not fit gets the single fitter's own try
+        # (its start values and stopping rule differ); the row says which fitter it got
+        for i, (pid, prof, extra) in enumerate(items):
+            if records[i] is None:
+                records[i] = _single_profile_record(pid, prof, extra, options)
     else:
         for i, (pid, prof, extra) in enumerate(items):
-            try:
-                res = profiles.analyze_profile(
-                    prof.position_m, prof.signal, model=options.model, baseline=options.baseline,
-                    window_n_sigma=options.window_n_sigma,
-                )
-            except (ValueError, FloatingPointError, np.linalg.LinAlgError, RuntimeError) as exc:
-                records[i] = failed_record("profile_id", pid, reason=f"analysis raised {type(exc).__name__}: {exc}",
-                                           device=prof.device, plane=prof.plane,
-                                           timestamp=_iso(prof.timestamp), source=prof.source, **extra)
-                continue
-            records[i] = profile_record(pid, prof, res, fitter="single", **extra)
+            records[i] = _single_profile_record(pid, prof, extra, options)
     return [r for r in records if r is not None]
+
+
+def _single_profile_record(pid: str, prof: Any, extra: Mapping[str, Any], options: AnalysisOptions) -> dict:
+    try:
+        res = _profiles.analyze_profile(
+            prof.position_m, prof.signal, model=options.model, baseline=options.baseline,
+            window_n_sigma=options.window_n_sigma,
+        )
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError, RuntimeError) as exc:
+        return failed_record("profile_id", pid, reason=f"analysis raised {type(exc).__name__}: {exc}",
+                             device=prof.device, plane=prof.plane, timestamp=_iso(prof.timestamp),
+                             source=prof.source, **extra)
+    return profile_record(pid, prof, res, fitter="single", **extra)
 
 
 def analyze_frame_items(items: Sequence[tuple[str, Any, Mapping[str, Any]]],
@@ -607,6 +618,8 @@ def orbit_records(report: Any, *, interval_start: pd.Timestamp, interval_end: pd
             interval_end=_iso(interval_end),
             timestamp=_iso(interval_start),
             interval_complete=bool(complete),
+            n_readings=getattr(report, "n_readings", None),
+            sampling_Hz=getattr(report, "sampling_Hz", None),
         )
         rows.append(record)
     return rows
@@ -690,7 +703,7 @@ def summarize_orbit(store: Any, start: Any = None, end: Any = None, interval: st
             slow = None
         if slow is not None and len(slow) == 0:
             slow = None
-        report = orbit.analyze_orbit(bpm, slow_df=slow)
+        report = orbit.analyze_orbit(bpm, slow_df=slow, keep_trends=False)
         records.extend(orbit_records(report, interval_start=t0, interval_end=t1, complete=bool(t1 <= last)))
     _write(store, "orbit", records, options, version or default_version(options), write)
     return records
