@@ -68,6 +68,9 @@ READERS: dict[str, Callable[[Path], Any]] = {
     "scans": read_scan,
 }
 
+#: Suffixes some reader takes; below a folder, other files are skipped.
+INPUT_SUFFIXES = (*_util.CSV_SUFFIXES, *_util.PARQUET_SUFFIXES, *IMAGE_SUFFIXES)
+
 #: File-name patterns that are never inputs: hidden, temporary, partial, backups.
 IGNORED_PREFIXES = (".", "~")
 IGNORED_SUFFIXES = (".tmp", ".part", ".partial", ".swp", ".bak")
@@ -167,10 +170,10 @@ def _ignored(path: Path) -> bool:
 def iter_inputs(paths: Iterable[str | Path]) -> Iterator[Path]:
     """The inputs named by ``paths``: files, and files and scan folders below folders.
 
-    A scan folder is yielded whole and not entered.  Below a folder, hidden and
-    temporary files (:data:`IGNORED_PREFIXES`, :data:`IGNORED_SUFFIXES`) and
-    auxiliary files (sidecars, referenced dark frames) are skipped, in sorted
-    order.  A path named directly is yielded as it is, unless it is a sidecar or
+    A scan folder is yielded whole and not entered.  Below a folder, files are
+    yielded in sorted order, skipping hidden and temporary files
+    (:data:`IGNORED_PREFIXES`, :data:`IGNORED_SUFFIXES`), files no reader takes
+    (not in :data:`INPUT_SUFFIXES`: sidecars, notes) and referenced dark frames.  A path named directly is yielded as it is, unless it is a sidecar or
     dark frame.
     """
     for raw in paths:
@@ -199,8 +202,8 @@ def _walk(folder: Path, darks: dict[Path, set[Path]]) -> Iterator[Path]:
             yield from _walk(child, darks)
             continue
         suffix = child.suffix.lower()
-        if suffix == ".json" and is_auxiliary(child):
-            continue
+        if suffix not in INPUT_SUFFIXES:
+            continue  # sidecars, notes, READMEs: no reader takes them
         if suffix in IMAGE_SUFFIXES:
             target = child.resolve()
             # the sidecar naming a dark frame sits in its folder or a folder above
@@ -235,6 +238,7 @@ def read_any(path: str | Path) -> tuple[str, Any]:
 
 __all__ = [
     "DARK_SEARCH_LEVELS",
+    "INPUT_SUFFIXES",
     "KINDS",
     "READERS",
     "READER_VERSION",

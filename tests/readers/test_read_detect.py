@@ -65,6 +65,8 @@ def test_iter_inputs_yields_real_inputs_only(tmp_path, good, scans):
     (inbox / ".partial.csv").write_text("x")
     (inbox / "upload.csv.part").write_text("x")
     (inbox / "~lock.csv").write_text("x")
+    (inbox / "README.md").write_text("notes")
+    (inbox / "orphan.json").write_text("{}")
     found = [p.relative_to(inbox).as_posix() for p in iter_inputs([inbox])]
     assert found == [
         "SCR-01_8bit.png",
