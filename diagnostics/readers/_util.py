@@ -472,9 +472,10 @@ def _epoch_to_time(table: pa.Table, epoch: Mapping[str, bool], path: Path, row_n
     for name, is_epoch in epoch.items():
         if not is_epoch:
             continue
-        seconds = table.column(name).to_numpy(zero_copy_only=False).astype(np.float64)
+        column = table.column(name)
+        numbers = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
         table = table.set_column(table.schema.get_field_index(name), name,
-                                 pa.array(epoch_to_ns(seconds, path, name, row_name), TIME_TYPE))
+                                 _time_from_numbers(numbers, path, name, row_name))
     return table
 
 

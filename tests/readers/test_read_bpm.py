@@ -230,3 +230,8 @@ def test_order_rules_match_a_pandas_groupby_reference(tmp_path_factory, rows):
     assert df["bpm"].tolist() == expected["bpm"].tolist()
     file_rows = np.argsort([t for t, _ in rows], kind="stable")  # x_mm holds the file row number
     np.testing.assert_array_equal(df["x_m"].to_numpy(), file_rows * 1e-3)
+
+
+def test_empty_time_in_an_epoch_column_is_named_empty(write):
+    with pytest.raises(InputError, match=r"line 3: column 'timestamp' is empty"):
+        read_bpm(write("b.csv", HEADER + "1764482400,BPM-01,1,2\n,BPM-01,1,2\n"))
