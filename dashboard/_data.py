@@ -63,16 +63,13 @@ class Unavailable(RuntimeError):
 
 
 def store_root(argv: list[str] | None = None) -> Path | None:
-    """The store folder: ``--store DIR`` (or a bare ``DIR``) after ``--``, else ``$BEAMDIAG_STORE``."""
+    """The store folder: ``--store DIR`` after ``--`` on the command line, else ``$BEAMDIAG_STORE``."""
     args = list(sys.argv[1:] if argv is None else argv)
     for i, arg in enumerate(args):
         if arg == "--store" and i + 1 < len(args):
             return Path(args[i + 1]).expanduser().resolve()
         if arg.startswith("--store="):
             return Path(arg.split("=", 1)[1]).expanduser().resolve()
-    bare = [a for a in args if not a.startswith("-")]
-    if bare:
-        return Path(bare[0]).expanduser().resolve()
     env = os.environ.get(STORE_ENV)
     return Path(env).expanduser().resolve() if env else None
 

@@ -177,14 +177,22 @@ def fmt_num(value: Any, scale: float = 1.0, digits: int = 3) -> str:
 
 
 def fmt_pm(value: Any, err: Any, scale: float = 1.0, unit: str = "", digits: int = 3) -> str:
-    """``'2.31 ± 0.05 mm mrad'``: the error with two significant digits, value to match."""
+    """``'2.31 ± 0.05 mm mrad'``: the uncertainty rounded, the value to the same decimal.
+
+    The uncertainty keeps two significant digits when its leading two digits
+    are below 35 and one otherwise (the rounding rule of the Particle Data
+    Group, Review of Particle Physics, "Introduction": rounding of errors).
+    """
     if not finite(value):
         return "–"
     v = float(value) * scale
     if finite(err) and float(err) > 0:
         e = float(err) * scale
-        decimals = max(0, 1 - int(math.floor(math.log10(abs(e)))))
-        text = f"{v:.{decimals}f} ± {e:.{decimals}f}"
+        exponent = int(math.floor(math.log10(abs(e))))
+        leading = int(abs(e) / 10 ** (exponent - 1))  # first two significant digits, 10..99
+        sig = 2 if leading < 35 else 1
+        decimals = max(0, sig - 1 - exponent)
+        text = f"{v:.{decimals}f} ± {round(e, decimals):.{decimals}f}"
     else:
         text = f"{v:.{digits}g}"
     return f"{text} {unit}".strip()
@@ -313,3 +321,30 @@ def big_number(label: str, value: str, *, help: str | None = None, sub: str | No
     st.metric(label, value, delta=delta, delta_color=delta_color, help=help, border=True)
     if sub:
         st.caption(sub)
+
+
+#: How often a page waiting for the orbit analysis looks again, seconds.
+ORBIT_POLL_S = 2
+
+
+def orbit_report_or_wait(root: str, stamp: str, window: _data.Window):
+    """The window's orbit report; while it is computed, a note that reruns the page when it is in.
+
+    Returns the report, a stand-in of an overlapping window while updating
+    (with a note), or ``None`` while nothing is ready yet.
+    """
+    answer = _data.orbit_report(root, stamp, window.key)
+    if answer.ready:
+        return answer.report
+
+    def poll() -> None:
+        if _data.orbit_report(root, stamp, window.key).ready:
+            st.rerun()
+        if answer.updating:
+            st.caption("Updating the orbit analysis for the new window …")
+        else:
+            st.info("Analysing the orbit of this window (all BPM readings) … the page fills in "
+                    "when it is done.", icon=":material/hourglass_top:")
+
+    st.fragment(poll, run_every=ORBIT_POLL_S)()
+    return answer.report

@@ -44,6 +44,11 @@ def worst_drift(report) -> object | None:
     return max(summaries, key=lambda s: abs(s.max_abs_drift_m)) if summaries else None
 
 
+def step_events(report) -> tuple:
+    """The report's step events (steps at one time across BPMs), newest library first."""
+    return tuple(getattr(report, "step_events", ()) or ())
+
+
 def headline(root: str, waiting: bool = False) -> None:
     stamp = _data.stamp(root)
     window = _ui.current_window(root, stamp)
@@ -79,7 +84,6 @@ def headline(root: str, waiting: bool = False) -> None:
                 _ui.big_number(label, "…" if not answer.ready else "–", sub=note)
     else:
         worst = worst_drift(report)
-        steps = report.steps
         stale = " · updating …" if answer.updating else ""
         with cols[2]:
             if worst is None:
@@ -91,11 +95,13 @@ def headline(root: str, waiting: bool = False) -> None:
                                sub=f"{worst.bpm} {worst.plane} · limit "
                                    f"{report.limits.drift_limit_m * _ui.UM_PER_M:g} µm{stale}")
         with cols[3]:
-            bpms = sorted({b for b, _, _ in steps})
-            _ui.big_number("Orbit steps", f"{len(steps)}",
-                           help="Sudden position changes found by the step detector, per BPM and plane.",
-                           sub=(f"on {len(bpms)} BPMs, first {_ui.fmt_time(steps[0][2].time)[11:19]}"
-                                if steps else "none in the window") + stale)
+            events = step_events(report)
+            first = f", first {_ui.fmt_time(events[0].time)[11:19]}" if events else ""
+            n_bpms = len({b for e in events for b in e.bpms})
+            _ui.big_number("Orbit steps", f"{len(events)}",
+                           help="Sudden orbit changes: steps found on one or more BPMs at the same time "
+                                f"count once ({len(report.steps)} BPM-plane steps in all).",
+                           sub=(f"on {n_bpms} BPMs{first}" if events else "none in the window") + stale)
         with cols[4]:
             losses = len(report.loss_events)
             _ui.big_number("Out-of-limit events", f"{len(report.violations)}",
@@ -131,12 +137,8 @@ def events_of(root: str, stamp: str, window: _data.Window, report) -> pd.DataFra
     """Steps (one line per distinct time), beam-loss events and scans, for marking trends."""
     rows = []
     if report is not None:
-        seen: set[pd.Timestamp] = set()
-        for bpm, plane, step in report.steps:
-            t = _data.utc(step.time).floor("10s")
-            if t not in seen:
-                seen.add(t)
-                rows.append({"time": step.time, "kind": "step", "label": f"step {bpm} {plane}"})
+        for ev in step_events(report):
+            rows.append({"time": ev.time, "kind": "step", "label": f"step on {len(ev.bpms)} BPMs"})
         for ev in report.loss_events:
             rows.append({"time": ev.start, "end": ev.end, "kind": "loss",
                          "label": f"loss {ev.upstream}→{ev.downstream}"})
