@@ -1766,7 +1766,12 @@ class Store:
             if not rows:
                 return _empty_trend(out_cols, value_columns)
             paths = [str(self.root / r["path"]) for r in rows]
-            sql, params = _trend_sql(paths, dev_col, value_columns, width_ns, t0, t1, devices)
+            # the time filter is only needed where a file reaches outside the window
+            lo = None if t0 is None or all(r["tmin_ns"] >= _ns(t0) for r in rows) else t0
+            hi = None if t1 is None or all(r["tmax_ns"] < _ns(t1) for r in rows) else t1
+            signed = any(r["tmin_ns"] < 0 for r in rows)  # readings before 1970
+            sql, params = _trend_sql(paths, dev_col, value_columns, width_ns, lo, hi, devices,
+                                     signed=signed)
             con = duckdb.connect(":memory:", config={"threads": 2, "memory_limit": "2GB"})
             try:
                 con.execute("SET allowed_directories = " + _sql_list([str(self.root) + os.sep]))
@@ -1980,7 +1985,7 @@ def _bucket_ns(bucket: Any) -> int:
     return ns
 
 
-def _trend_sql(paths, dev_col, value_columns, width_ns, t0, t1, devices):
+def _trend_sql(paths, dev_col, value_columns, width_ns, t0, t1, devices, *, signed=True):
     dev = _quote_ident(dev_col)
     aggs = []
     for c in value_columns:
@@ -1994,7 +1999,9 @@ def _trend_sql(paths, dev_col, value_columns, width_ns, t0, t1, devices):
     # bucket start in ns since the epoch, floored (integer arithmetic: exact, and
     # much cheaper than time_bucket on TIMESTAMPTZ, which needs ICU time zones)
     e = "epoch_ns(timestamp)"
-    bucket = (f"(({e} // $w) - CASE WHEN {e} % $w < 0 THEN 1 ELSE 0 END) * $w")
+    bucket = f"({e} // $w) * $w"  # integer division truncates: floor for times after 1970
+    if signed:
+        bucket = f"(({e} // $w) - CASE WHEN {e} % $w < 0 THEN 1 ELSE 0 END) * $w"
     where, params = [], {"w": width_ns}
     if t0 is not None:
         where.append("timestamp >= $t0")

@@ -163,3 +163,15 @@ def test_trend_reads_what_duckdb_reads_from_the_files(filled):
     assert len(ref) == len(got)
     np.testing.assert_allclose(got["x_m_mean"], [r[2] for r in ref], rtol=1e-12)
     assert got["x_m_count"].tolist() == [r[3] for r in ref]
+
+
+def test_buckets_floor_before_the_epoch(tmp_path):
+    """Readings before 1970 fall in the bucket that starts at or before them (floor),
+    as pandas' Grouper with origin='epoch' puts them."""
+    store = Store(tmp_path / "store")
+    df = readings(200, start=pd.Timestamp("1969-12-31T23:58:00Z"))
+    store.write_bpm(df, sha256="ef" * 32, source="old.csv")
+    got = store.trend("bpm", "x_m", bucket="1min")
+    ref = reference(df, ["x_m"], "1min")
+    pd.testing.assert_frame_equal(got, ref, check_dtype=False, rtol=1e-12, atol=0)
+    assert got["timestamp"].min() == pd.Timestamp("1969-12-31T23:58:00Z")
