@@ -358,15 +358,32 @@ def least_squares_fit(
     )
 
 
+@dataclass(frozen=True, eq=False)
+class BatchLMResult:
+    """Outcome of :func:`levenberg_marquardt_batch`.
+
+    ``params`` (n, k); ``converged`` (n,) bool; ``cost`` (n,) sum of squared
+    residuals at the last evaluated point; ``jtj`` (n, k, k) the Gauss-Newton
+    matrix there (its inverse times ``cost / dof`` is the covariance);
+    ``n_evaluations`` how many times the residual function was called.
+    """
+
+    params: np.ndarray
+    converged: np.ndarray
+    cost: np.ndarray
+    jtj: np.ndarray
+    n_evaluations: int
+
+
 def levenberg_marquardt_batch(
     residual_and_jacobian: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]],
     p0: np.ndarray,
     *,
     max_iter: int = 200,
     xtol: float = 1e-12,
-    ftol: float = 1e-15,
+    ftol: float = 1e-12,
     initial_damping: float = 1.0,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+) -> BatchLMResult:
     """Levenberg-Marquardt over many independent problems at once, in numpy.
 
     Every problem keeps its own damping ``lambda`` (Marquardt's scaling by
@@ -383,8 +400,14 @@ def levenberg_marquardt_batch(
         Jacobian ``(len(rows), m, k)``.
     p0 : ndarray, shape (n_problems, k)
     max_iter : int
-    xtol, ftol : float
-        Relative step and relative cost-reduction tolerances.
+    xtol : float
+        A problem stops when its step is below ``xtol`` relative to the parameters.
+    ftol : float
+        A problem stops when its Newton decrement ``g^T (J^T J)^-1 g`` (the cost an
+        undamped Gauss-Newton step could still remove) is below ``ftol * cost``;
+        that last step is then taken without evaluating it, which leaves an error
+        of second order in it (the parameters then sit within about
+        ``ftol * dof`` standard errors of the optimum).
     initial_damping : float
         Starting ``lambda``.  The cautious default 1 (a step about half the
         Gauss-Newton one) keeps far starts from sliding into a flat region, as
@@ -393,9 +416,7 @@ def levenberg_marquardt_batch(
 
     Returns
     -------
-    params : ndarray (n_problems, k)
-    converged : ndarray of bool (n_problems,)
-    cost : ndarray (n_problems,), the final sum of squared residuals.
+    BatchLMResult
     """
     p = np.array(p0, dtype=float, copy=True)
     n, k = p.shape
@@ -404,15 +425,39 @@ def levenberg_marquardt_batch(
     cost = np.einsum("ij,ij->i", r, r)
     lam = np.full(n, float(initial_damping))
     converged = np.zeros(n, dtype=bool)
+    jtj_out = np.full((n, k, k), np.nan)
+    n_eval = 1
     active = np.isfinite(cost)
     eye = np.eye(k)
     for _ in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        ja, ra = jac[idx], r[idx]
-        jtj = np.matmul(ja.transpose(0, 2, 1), ja)
-        g = np.matmul(ja.transpose(0, 2, 1), ra[:, :, None])[:, :, 0]
+        ja, ra = (jac, r) if idx.size == n else (jac[idx], r[idx])
+        jt = ja.transpose(0, 2, 1)
+        jtj = np.matmul(jt, ja)
+        g = np.matmul(jt, ra[:, :, None])[:, :, 0]
+        # Newton decrement g^T (J^T J)^-1 g: the most an undamped step could still
+        # gain; below ftol * cost the problem is solved and needs no evaluation
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            try:
+                dec = np.einsum("ij,ij->i", g, np.linalg.solve(jtj, g[:, :, None])[:, :, 0])
+            except np.linalg.LinAlgError:
+                dec = np.full(idx.size, np.inf)
+        solved = np.isfinite(dec) & (dec <= ftol * cost[idx])
+        if solved.any():
+            # take the final undamped step without evaluating it (its gain is below
+            # ftol * cost; the remaining error is second order in it)
+            rows_s = idx[solved]
+            p[rows_s] -= np.linalg.solve(jtj[solved], g[solved][:, :, None])[:, :, 0]
+            jtj_out[rows_s] = jtj[solved]
+            converged[rows_s] = True
+            active[rows_s] = False
+        keep = ~solved
+        if not keep.any():
+            break
+        if not keep.all():
+            idx, jtj, g = idx[keep], jtj[keep], g[keep]
         diag = np.maximum(np.diagonal(jtj, axis1=1, axis2=2), 1e-300)
         a = jtj + lam[idx, None, None] * diag[:, :, None] * eye
         try:
@@ -423,14 +468,16 @@ def levenberg_marquardt_batch(
         with np.errstate(over="ignore", invalid="ignore"):
             r_new, j_new = residual_and_jacobian(p_new, idx)
             cost_new = np.einsum("ij,ij->i", r_new, r_new)
+        n_eval += 1
         better = np.isfinite(cost_new) & (cost_new <= cost[idx])
         small_step = np.all(np.abs(step) <= xtol * (np.abs(p[idx]) + xtol), axis=1)
-        small_gain = (cost[idx] - cost_new) <= ftol * cost[idx]
         acc = idx[better]
-        p[acc], r[acc], jac[acc] = p_new[better], r_new[better], j_new[better]
-        done = better & (small_step | small_gain)
-        # a rejected step that is already negligibly small also ends the search
-        done |= ~better & small_step
+        if acc.size == n:
+            p, r, jac = p_new, r_new, j_new
+        else:
+            p[acc], r[acc], jac[acc] = p_new[better], r_new[better], j_new[better]
+        # an accepted or rejected step that is already negligibly small ends the search
+        done = small_step
         cost[acc] = cost_new[better]
         lam[acc] = np.maximum(lam[acc] / 10.0, 1e-15)
         rej = idx[~better]
@@ -440,7 +487,12 @@ def levenberg_marquardt_batch(
         active[idx[done]] = False
         active[stuck] = False
         converged[stuck] = True  # no further descent possible: a (local) minimum
-    return p, converged, cost
+    # J^T J where it was not kept at convergence (step or damping exit, max_iter)
+    miss = np.flatnonzero(np.isnan(jtj_out[:, 0, 0]))
+    if miss.size:
+        jm = jac[miss]
+        jtj_out[miss] = np.matmul(jm.transpose(0, 2, 1), jm)
+    return BatchLMResult(p, converged, cost, jtj_out, n_eval)
 
 
 # ---------------------------------------------------------------------------
@@ -575,52 +627,130 @@ def start_values(t: np.ndarray, y: np.ndarray, *, baseline: str = "linear") -> n
     return p[0] if np.ndim(y) == 1 else p
 
 
-def _physical_gaussian(x, y, x_ref, h, s, p_int, cov_int, n_base, chi2, dof, chi2_red, ok, message):
-    """Map a scaled-coordinate Gaussian solution back to metres and signal units."""
-    t_scale = np.array([s, h, h, s] + ([s / h] if n_base == 2 else []))
-    params = p_int * t_scale
-    params[1] += x_ref
-    params[2] = abs(params[2])
-    cov = cov_int * np.outer(t_scale, t_scale)
-    err = np.sqrt(np.abs(np.diag(cov)))
+def refine_start(t: np.ndarray, y: np.ndarray, p: np.ndarray, *, fraction: float = 0.2) -> np.ndarray:
+    """Improve Gaussian start values with a weighted parabola fit to ln(signal).
+
+    On the points standing above ``fraction`` of the amplitude over the start
+    baseline, ``ln(y - b) = a0 + a1 t + a2 t^2`` is fitted with weights
+    ``(y - b)^2`` (R. A. Caruana, R. B. Searle, T. Heller & S. I. Shupack, Anal.
+    Chem. 58, 1162 (1986); the weighting of H. Guo, IEEE Signal Process. Mag. 28,
+    134 (2011)), giving ``mu = -a1 / (2 a2)``, ``sigma^2 = -1 / (2 a2)`` and the
+    amplitude.  Rows where the parabola does not open downwards keep ``p``.
+
+    Parameters
+    ----------
+    t, y : ndarray, shape (n_profiles, n_points)
+    p : ndarray, shape (n_profiles, k)
+        Start values from :func:`start_values` (their baseline is kept).
+    """
+    t2, y2 = np.atleast_2d(t), np.atleast_2d(y)
+    t2 = np.broadcast_to(t2, y2.shape)
+    p2 = np.array(np.atleast_2d(p), dtype=float, copy=True)
+    base = p2[:, 3:4] + (p2[:, 4:5] * t2 if p2.shape[1] == 5 else 0.0)
+    yb = y2 - base
+    use = yb > fraction * p2[:, 0:1]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(use, yb * yb, 0.0)
+        ly = np.where(use, np.log(np.where(use, yb, 1.0)), 0.0)
+        tc = t2 - p2[:, 1:2]  # centred on the first guess for conditioning
+        tc2 = tc * tc
+        s0, s1, s2 = w.sum(1), (w * tc).sum(1), (w * tc2).sum(1)
+        s3, s4 = (w * tc2 * tc).sum(1), (w * tc2 * tc2).sum(1)
+        r0, r1, r2 = (w * ly).sum(1), (w * ly * tc).sum(1), (w * ly * tc2).sum(1)
+        a = np.stack([np.stack([s0, s1, s2], -1), np.stack([s1, s2, s3], -1), np.stack([s2, s3, s4], -1)], 1)
+        rhs = np.stack([r0, r1, r2], -1)
+        good = use.sum(1) >= 3
+        det = np.linalg.det(a)
+        good &= np.isfinite(det) & (np.abs(det) > 1e-300)
+        coef = np.zeros((len(y2), 3))
+        if good.any():
+            coef[good] = np.linalg.solve(a[good], rhs[good][:, :, None])[:, :, 0]
+        c2 = coef[:, 2]
+        good &= c2 < 0
+        sig = np.sqrt(-0.5 / np.where(good, c2, -1.0))
+        dmu = -coef[:, 1] / (2 * np.where(good, c2, -1.0))
+        amp = np.exp(coef[:, 0] - coef[:, 1] ** 2 / (4 * np.where(good, c2, -1.0)))
+        # keep only sane refinements: centre moved by less than the first sigma, width within x3
+        good &= np.isfinite(sig) & np.isfinite(amp) & (np.abs(dmu) < p2[:, 2]) & (sig < 3 * p2[:, 2]) & (sig > p2[:, 2] / 3)
+    p2[good, 0] = amp[good]
+    p2[good, 1] = p2[good, 1] + dmu[good]
+    p2[good, 2] = sig[good]
+    return p2[0] if np.ndim(y) == 1 else p2
+
+
+def _physical_rows(x, x_ref, h, s, p_int, cov_int, chi2, resid_rms, dof, ok, message, n_base):
+    """Map scaled-coordinate Gaussian solutions back to metres and signal units, row by row.
+
+    Also applies the physical checks that turn a converged fit into a failed one.
+    Arrays have a leading profile axis; ``x`` is ``(n, m)``; ``chi2`` is the
+    weighted chi-square in signal units and ``resid_rms`` the unweighted rms residual.  Returns a dict of
+    arrays (``amplitude``, ``centroid``, ``sigma``, their errors, ``c0``, ``slope``,
+    ``residual_rms``, ``ok``), ``params``/``cov`` and the list of failure reasons.
+    """
+    n = len(p_int)
+    cols = [s, h, h, s] + ([s / h] if n_base == 2 else [])
+    scale = np.stack(cols, axis=1)
+    params = p_int * scale
+    params[:, 1] += x_ref
+    params[:, 2] = np.abs(params[:, 2])
+    with np.errstate(invalid="ignore", over="ignore"):
+        cov = cov_int * scale[:, :, None] * scale[:, None, :]
+        err = np.sqrt(np.abs(np.diagonal(cov, axis1=1, axis2=2)))
+    amp, mu, sig = params[:, 0], params[:, 1], params[:, 2]
+    lo, hi = x[:, 0], x[:, -1]
+    span = hi - lo
+    dmin = np.min(np.diff(x, axis=1), axis=1)
+    reasons = list(message)
+    ok = np.array(ok, dtype=bool, copy=True)
+    with np.errstate(invalid="ignore"):
+        tests = [
+            (~np.all(np.isfinite(params), axis=1), lambda i: "non-finite parameters"),
+            (amp <= 0, lambda i: f"fitted amplitude {amp[i]:.3g} is not positive"),
+            (~((lo <= mu) & (mu <= hi)), lambda i: f"fitted centre {mu[i]:.4g} m lies outside the scan [{lo[i]:.4g}, {hi[i]:.4g}] m"),
+            (sig > span, lambda i: f"fitted sigma {sig[i]:.3g} m is wider than the scan ({span[i]:.3g} m)"),
+            (sig < 0.1 * dmin, lambda i: f"fitted sigma {sig[i]:.3g} m is far below the point spacing"),
+            (~np.all(np.isfinite(err), axis=1), lambda i: "parameter covariance is singular"),
+        ]
+    for bad, why in tests:
+        for i in np.flatnonzero(ok & bad):
+            reasons[i] = why(i)
+            ok[i] = False
+    out = {
+        "amplitude": amp, "amplitude_err": err[:, 0], "centroid": mu, "centroid_err": err[:, 1],
+        "sigma": sig, "sigma_err": err[:, 2], "c0": params[:, 3],
+        "slope": params[:, 4] if n_base == 2 else np.zeros(n), "x_ref": np.asarray(x_ref, dtype=float),
+        "residual_rms": np.asarray(resid_rms, dtype=float), "chi2": np.asarray(chi2, dtype=float),
+        "chi2_red": np.asarray(chi2, dtype=float) / dof if dof > 0 else np.full(n, np.nan), "ok": ok,
+    }
+    return out, params, cov, ["" if o else r for o, r in zip(ok, reasons, strict=True)]
+
+
+def _physical_gaussian(x, x_ref, h, s, p_int, cov_int, n_base, chi2, resid_rms, dof, ok, message):
+    """One profile's scaled solution as a :class:`GaussianFit` (see :func:`_physical_rows`)."""
+    rows, params, cov, reasons = _physical_rows(
+        x[None, :], np.atleast_1d(x_ref), np.atleast_1d(h), np.atleast_1d(s), p_int[None, :], cov_int[None],
+        np.atleast_1d(chi2), np.atleast_1d(resid_rms), dof, [bool(ok)], [message], n_base,
+    )
     names = ("amplitude", "centroid_m", "sigma_m", "c0") + (("c1_per_m",) if n_base == 2 else ())
-    slope = params[4] if n_base == 2 else 0.0
-    resid_rms = math.sqrt(chi2 * s * s / dof) if dof > 0 and math.isfinite(chi2) else math.nan
-    amp, mu, sig = params[0], params[1], params[2]
-    reason = message
-    if ok:
-        span = x[-1] - x[0]
-        if not np.all(np.isfinite(params)):
-            ok, reason = False, "non-finite parameters"
-        elif amp <= 0:
-            ok, reason = False, f"fitted amplitude {amp:.3g} is not positive"
-        elif not (x[0] <= mu <= x[-1]):
-            ok, reason = False, f"fitted centre {mu:.4g} m lies outside the scan [{x[0]:.4g}, {x[-1]:.4g}] m"
-        elif sig > span:
-            ok, reason = False, f"fitted sigma {sig:.3g} m is wider than the scan ({span:.3g} m)"
-        elif sig < 0.1 * np.min(np.diff(x)):
-            ok, reason = False, f"fitted sigma {sig:.3g} m is far below the point spacing"
-        elif not np.all(np.isfinite(err)):
-            ok, reason = False, "parameter covariance is singular"
     return GaussianFit(
-        amplitude=float(amp),
-        amplitude_err=float(err[0]),
-        centroid_m=float(mu),
-        centroid_err_m=float(err[1]),
-        sigma_m=float(sig),
-        sigma_err_m=float(err[2]),
-        baseline_c0=float(params[3]),
-        baseline_slope_per_m=float(slope),
+        amplitude=float(rows["amplitude"][0]),
+        amplitude_err=float(rows["amplitude_err"][0]),
+        centroid_m=float(rows["centroid"][0]),
+        centroid_err_m=float(rows["centroid_err"][0]),
+        sigma_m=float(rows["sigma"][0]),
+        sigma_err_m=float(rows["sigma_err"][0]),
+        baseline_c0=float(rows["c0"][0]),
+        baseline_slope_per_m=float(rows["slope"][0]),
         x_ref_m=float(x_ref),
-        params=params,
-        covariance=cov,
+        params=params[0],
+        covariance=cov[0],
         param_names=names,
-        chi2=float(chi2 * s * s),
+        chi2=float(rows["chi2"][0]),
         dof=int(dof),
-        chi2_red=float(chi2_red * s * s) if math.isfinite(chi2_red) else math.nan,
-        residual_rms=resid_rms,
-        success=bool(ok),
-        message="" if ok else reason,
+        chi2_red=float(rows["chi2_red"][0]),
+        residual_rms=float(rows["residual_rms"][0]),
+        success=bool(rows["ok"][0]),
+        message=reasons[0],
     )
 
 
@@ -668,11 +798,11 @@ def fit_gaussian(
     k = 3 + n_base
     if x.size < k + 2:
         nan = np.full(k, np.nan)
-        return _physical_gaussian(x, y, 0.0, 1.0, 1.0, nan, np.full((k, k), np.nan), n_base, math.nan, x.size - k, math.nan, False, f"{x.size} points, the model needs at least {k + 2}")
+        return _physical_gaussian(x, 0.0, 1.0, 1.0, nan, np.full((k, k), np.nan), n_base, math.nan, math.nan, x.size - k, False, f"{x.size} points, the model needs at least {k + 2}")
     x_ref, h, s = _scales(x, y)
     t = (x - x_ref) / h
     if p0 is None:
-        p_start = start_values(t, y / s, baseline=baseline)
+        p_start = refine_start(t, y / s, start_values(t, y / s, baseline=baseline))
     else:
         q = np.asarray(p0, dtype=float)
         if q.size != k:
@@ -686,7 +816,12 @@ def fit_gaussian(
     model, jac = _gauss_model(n_base)
     # the data are scaled by s, so absolute weights become w * s^2
     fit = least_squares_fit(model, jac, t, y / s, p_start, weights=None if w is None else w * s * s, absolute_weights=absolute_weights)
-    return _physical_gaussian(x, y, x_ref, h, s, fit.params, fit.covariance, n_base, fit.chi2, fit.dof, fit.chi2_red, fit.success, fit.message)
+    # weighted chi-square in signal units; the unweighted residual rms measures the noise
+    chi2 = fit.chi2 * (s * s if w is None else 1.0)
+    with np.errstate(invalid="ignore", over="ignore"):
+        resid = s * (model(t, fit.params) - y / s)
+        resid_rms = math.sqrt(float(resid @ resid) / fit.dof) if fit.dof > 0 and np.all(np.isfinite(resid)) else math.nan
+    return _physical_gaussian(x, x_ref, h, s, fit.params, fit.covariance, n_base, chi2, resid_rms, fit.dof, fit.success, fit.message)
 
 
 # ---------------------------------------------------------------------------
@@ -736,30 +871,59 @@ def window_moments(
     else:
         mu = np.broadcast_to(np.asarray(centroid0_m, dtype=float), (len(y),)).copy()
         sig = np.broadcast_to(np.asarray(sigma0_m, dtype=float), (len(y),)).copy()
-    mask = np.zeros(y.shape, dtype=bool)
-    todo = np.isfinite(mu) & np.isfinite(sig) & (sig > 0)
+    # The window |x - mu| <= n sig is an index range [lo, hi) of the sorted
+    # positions, so each iteration needs only two counts and prefix sums.
+    xr = 0.5 * (x[:, :1] + x[:, -1:])
+    xc = x - xr  # centred, to keep the prefix-sum variance free of cancellation
+    wy = w * y
+    zero = np.zeros((len(y), 1))
+    c0 = np.concatenate([zero, np.cumsum(wy, axis=1)], axis=1)
+    c1 = np.concatenate([zero, np.cumsum(wy * xc, axis=1)], axis=1)
+    c2 = np.concatenate([zero, np.cumsum(wy * xc * xc, axis=1)], axis=1)
+    mu = mu - xr[:, 0]
+    ok = np.isfinite(mu) & np.isfinite(sig) & (sig > 0)
+    lo = np.zeros(len(y), dtype=np.int64)
+    hi = np.zeros(len(y), dtype=np.int64)
+    prev = (lo - 1, hi - 1)
+    todo = ok.copy()
     with np.errstate(invalid="ignore", divide="ignore"):
         for _ in range(max_iter):
             if not todo.any():
                 break
-            idx = np.flatnonzero(todo)
-            new = np.abs(x[idx] - mu[idx, None]) <= n_sigma * sig[idx, None]
-            same = np.all(new == mask[idx], axis=1)
-            mask[idx] = new
-            wy = np.where(new, w[idx] * y[idx], 0.0)
-            tot = wy.sum(1)
-            m = (wy * x[idx]).sum(1) / tot
-            var = (wy * (x[idx] - m[:, None]) ** 2).sum(1) / tot
-            good = (tot > 0) & (var > 0)
-            mu[idx] = np.where(good, m, np.nan)
-            sig[idx] = np.where(good, np.sqrt(np.where(good, var, 1.0)), np.nan)
-            todo[idx] = good & ~same
+            half = n_sigma * sig[:, None]
+            new_lo = np.where(todo, np.count_nonzero(xc < mu[:, None] - half, axis=1), lo)
+            new_hi = np.where(todo, np.count_nonzero(xc <= mu[:, None] + half, axis=1), hi)
+            same = (new_lo == lo) & (new_hi == hi)
+            # a window flipping between two ranges has settled too (take the latest)
+            cycle = (new_lo == prev[0]) & (new_hi == prev[1])
+            prev = (lo, hi)
+            lo, hi = new_lo, new_hi
+            li, hi_ = lo[:, None], hi[:, None]
+            s0 = (np.take_along_axis(c0, hi_, 1) - np.take_along_axis(c0, li, 1))[:, 0]
+            s1 = (np.take_along_axis(c1, hi_, 1) - np.take_along_axis(c1, li, 1))[:, 0]
+            s2 = (np.take_along_axis(c2, hi_, 1) - np.take_along_axis(c2, li, 1))[:, 0]
+            m = s1 / s0
+            var = s2 / s0 - m * m
+            good = (s0 > 0) & (var > 0)
+            upd = todo & ~same
+            mu = np.where(upd, np.where(good, m, np.nan), mu)
+            sig = np.where(upd, np.where(good, np.sqrt(np.where(good, var, 1.0)), np.nan), sig)
+            ok &= ~(upd & ~good)
+            todo = todo & good & ~same & ~cycle
+        # final moments computed directly on the settled window
+        idx = np.arange(y.shape[1])
+        mask = ok[:, None] & (idx >= lo[:, None]) & (idx < hi[:, None])
         wm = np.where(mask, w, 0.0)
         tot = (wm * y).sum(1)
-        d2 = (x - mu[:, None]) ** 2
+        mu = (wm * y * xc).sum(1) / tot
+        d2 = (xc - mu[:, None]) ** 2
+        var = (wm * y * d2).sum(1) / tot
+        good = ok & (tot > 0) & (var > 0)
+        sig = np.where(good, np.sqrt(np.where(good, var, 1.0)), np.nan)
+        mu = np.where(good, mu + xr[:, 0], np.nan)
         # d(rms^2)/dy_i = w_i (d_i^2 - rms^2) / tot; rms_err = |grad| / (2 rms) per unit noise
         grad = wm * (d2 - sig[:, None] ** 2) / tot[:, None]
-        err_unit = np.sqrt((grad**2).sum(1)) / (2.0 * sig)
+        err_unit = np.where(good, np.sqrt((grad**2).sum(1)) / (2.0 * sig), np.nan)
     return mu, sig, err_unit, mask.sum(1)
 
 
@@ -861,7 +1025,7 @@ class ProfileResult:
 
 @dataclass
 class _Shape:
-    """Fitted model values in physical units (internal)."""
+    """Fitted model values in physical units for one profile (internal)."""
 
     centroid: float = math.nan
     centroid_err: float = math.nan
@@ -889,136 +1053,173 @@ class _Shape:
         return self.amplitude * np.exp(-0.5 * (z / self.sigma) ** 2)
 
 
-def _shape_from_gaussian(fit: GaussianFit) -> _Shape:
-    return _Shape(
-        fit.centroid_m, fit.centroid_err_m, fit.sigma_m, fit.sigma_err_m, fit.amplitude, fit.amplitude_err,
-        fit.baseline_c0, fit.baseline_slope_per_m, fit.x_ref_m, fit.chi2_red,
-        FWHM_PER_SIGMA * fit.sigma_m, fit.success, fit.message,
-    )
+_SHAPE_KEYS = ("centroid", "centroid_err", "sigma", "sigma_err", "amplitude", "amplitude_err", "c0", "slope", "x_ref", "chi2_red")
 
 
-def _assemble(
+def _gauss_shape_rows(g: dict, x: np.ndarray, reasons: list[str]) -> dict:
+    """The Gaussian fit rows in the form :func:`_assemble_rows` takes as the model."""
+    sh = {k: g[k] for k in _SHAPE_KEYS}
+    sh["ok"] = g["ok"]
+    sh["message"] = reasons
+    sh["fwhm"] = FWHM_PER_SIGMA * g["sigma"]
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        ends = x[:, [0, -1]]
+        sh["excess"] = g["amplitude"][:, None] * np.exp(-0.5 * ((ends - g["centroid"][:, None]) / g["sigma"][:, None]) ** 2)
+    sh["extras"] = [{}] * len(x)
+    return sh
+
+
+def _shape_rows(shape: _Shape, x: np.ndarray, model: str) -> dict:
+    """One non-Gaussian shape fit as rows for :func:`_assemble_rows`."""
+    sh = {k: np.array([getattr(shape, k)], dtype=float) for k in _SHAPE_KEYS}
+    sh["ok"] = np.array([shape.ok])
+    sh["message"] = [shape.message]
+    sh["fwhm"] = np.array([shape.fwhm])
+    sh["excess"] = shape.excess(np.array([x[0], x[-1]]), model)[None, :] if shape.ok else np.full((1, 2), np.nan)
+    sh["extras"] = [shape.extras if shape.ok else {}]
+    return sh
+
+
+def _assemble_rows(
     x: np.ndarray,
     y: np.ndarray,
-    gauss: GaussianFit,
-    shape: _Shape,
+    g: dict,
+    sh: dict,
     model: str,
     baseline: str,
     window_n_sigma: float,
     snr_min: float,
-    win: tuple[float, float, float, int] | None = None,
-) -> ProfileResult:
-    """Combine the fits, the rms window and the quality checks into a result."""
-    flags: list[str] = []
-    notes: list[str] = []
-    n = x.size
+    too_few: np.ndarray,
+) -> list[ProfileResult]:
+    """Combine fits, the rms window and the quality checks into results, row by row.
+
+    ``x``, ``y`` are ``(n, m)``; ``g`` holds the Gaussian-fit rows (for the noise,
+    the SNR and ``non_gaussian``), ``sh`` the rows of the model reported.
+    """
+    n, m = y.shape
     n_base = 2 if baseline == "linear" else 1
-    if not gauss.success and "needs at least" in gauss.message:
-        flags.append("too_few_points")
-    # baseline for the rms: the fitted one, else the model-free edge estimate
-    if shape.ok:
-        base = shape.c0 + shape.slope * (x - shape.x_ref)
-    else:
-        x_ref, h, s = _scales(x, y)
-        if n >= 4:
-            p = start_values((x - x_ref) / h, y, baseline=baseline)
-            base = p[3] + (p[4] * (x - x_ref) / h if n_base == 2 else 0.0)
-        else:
-            base = np.full(n, float(np.min(y)))
-    yb = y - base
-    if win is None:
-        if n >= 3:
-            x_ref, h, s = _scales(x, y)
-            p = start_values((x - x_ref) / h, yb, baseline="constant") if n >= 4 else None
-            if p is not None:
-                c0, s0 = x_ref + h * p[1], h * p[2]
-            else:
-                c0 = s0 = None
-            mu_w, rms_w, err_unit, _ = window_moments(x, yb, n_sigma=window_n_sigma, centroid0_m=c0, sigma0_m=s0)
-            win = (float(mu_w[0]), float(rms_w[0]), float(err_unit[0]), 0)
-        else:
-            win = (math.nan, math.nan, math.nan, 0)
-    rms_centroid, rms, err_unit = win[0], win[1], win[2]
-    # noise per point: rms residual of the Gaussian fit, else the scatter of the edges
-    if gauss.success:
-        noise = gauss.residual_rms
-    else:
-        ne = max(2, int(round(EDGE_FRACTION * n)))
-        edges = np.concatenate([yb[:ne], yb[-ne:]])
-        noise = float(1.4826 * np.median(np.abs(edges - np.median(edges)))) if n >= 4 else math.nan
-    rms_err = err_unit * noise
-    amp_for_snr = gauss.amplitude if gauss.success else float(np.max(yb)) if n else math.nan
-    snr = amp_for_snr / noise if noise > 0 else (math.inf if amp_for_snr > 0 else math.nan)
-
-    if not shape.ok:
-        flags.append("fit_failed")
-        notes.append(f"fit failed: {shape.message}")
-    if math.isfinite(snr) and snr < snr_min:
-        flags.append("low_signal")
-        notes.append(f"signal-to-noise {snr:.3g} below {snr_min:g}")
-    if not math.isfinite(rms):
-        notes.append("no positive signal inside the rms window")
-    # clipping: centre near an end, or the peak not back to baseline at an end
-    if shape.ok:
-        c, sg = shape.centroid, shape.sigma
-    else:
-        c, sg = rms_centroid, rms
-    if math.isfinite(c) and math.isfinite(sg):
-        room = min(c - x[0], x[-1] - c)
-        why = ""
-        if room < CLIP_EDGE_N_SIGMA * sg:
-            why = f"centre {room / sg:.2g} sigma from the scan end"
-        elif shape.ok:
-            ex = shape.excess(np.array([x[0], x[-1]]), model)
-            if np.max(ex) > EDGE_EXCESS_FRACTION * shape.amplitude:
-                side = "low" if ex[0] >= ex[1] else "high"
-                why = f"baseline not reached on the {side}-position side"
-        if why:
-            flags.append("clipped")
-            notes.append(f"clipped: {why}")
-    # non-Gaussian: Gaussian sigma against the window-corrected rms
-    if gauss.success and math.isfinite(rms) and window_n_sigma > math.sqrt(3.0):
-        rms_c = rms / iterated_window_rms_factor(window_n_sigma)
-        diff = abs(gauss.sigma_m - rms_c)
-        comb = math.hypot(gauss.sigma_err_m, rms_err if math.isfinite(rms_err) else 0.0)
-        if diff > NON_GAUSSIAN_THRESHOLD * gauss.sigma_m and diff > 3.0 * comb:
-            flags.append("non_gaussian")
-            notes.append(f"non-Gaussian: Gaussian sigma {gauss.sigma_m:.4g} m vs rms {rms_c:.4g} m")
-
-    ok = shape.ok
     nan = math.nan
-    fwhm = shape.fwhm if ok else _fwhm_from_data(x, yb)
-    base_c = shape.c0 + shape.slope * (shape.centroid - shape.x_ref) if ok else nan
-    e = shape.extras if ok else {}
-    return ProfileResult(
-        centroid_m=shape.centroid if ok else nan,
-        centroid_err_m=shape.centroid_err if ok else nan,
-        sigma_m=shape.sigma if ok else nan,
-        sigma_err_m=shape.sigma_err if ok else nan,
-        rms_m=rms,
-        rms_err_m=rms_err,
-        rms_centroid_m=rms_centroid,
-        fwhm_m=fwhm,
-        amplitude=shape.amplitude if ok else nan,
-        amplitude_err=shape.amplitude_err if ok else nan,
-        baseline=base_c,
-        baseline_slope_per_m=shape.slope if ok else nan,
-        chi2_red=shape.chi2_red if ok else nan,
-        snr=float(snr),
-        n_points=int(n),
-        model=model,
-        flags=merge_flags(flags),
-        message="; ".join(notes),
-        window_n_sigma=float(window_n_sigma),
-        core_sigma_m=e.get("s1", nan),
-        halo_sigma_m=e.get("s2", nan),
-        halo_fraction=e.get("halo_fraction", nan),
-        halo_fraction_err=e.get("halo_fraction_err", nan),
-        order=e.get("p", nan),
-        order_err=e.get("p_err", nan),
-        width_m=e.get("w", nan),
-        gaussian_sigma_m=gauss.sigma_m if gauss.success else nan,
-    )
+    ok = np.asarray(sh["ok"], dtype=bool)
+    x_ref, h, _ = _scales(x, y)
+    t = (x - x_ref[:, None]) / h[:, None]
+    # baseline for the rms: the fitted one, else the model-free edge estimate
+    with np.errstate(invalid="ignore"):
+        yb = y - (sh["c0"][:, None] + sh["slope"][:, None] * (x - sh["x_ref"][:, None]))
+    mu0 = np.array(sh["centroid"], dtype=float, copy=True)
+    s0 = np.array(sh["sigma"], dtype=float, copy=True)
+    bad = np.flatnonzero(~ok)
+    if bad.size:
+        p_edge = start_values(t[bad], y[bad], baseline=baseline)
+        yb[bad] = y[bad] - (p_edge[:, 3:4] + (p_edge[:, 4:5] * t[bad] if n_base == 2 else 0.0))
+        # window start for those: the half-maximum estimate (a converged fit starts from itself;
+        # the window's fixed point, not its start, defines the rms)
+        pw = start_values(t[bad], yb[bad], baseline="constant")
+        mu0[bad] = x_ref[bad] + h[bad] * pw[:, 1]
+        s0[bad] = h[bad] * pw[:, 2]
+    mu_w, rms_w, err_unit, _ = window_moments(x, yb, n_sigma=window_n_sigma, centroid0_m=mu0, sigma0_m=s0)
+    # noise per point: rms residual of the Gaussian fit, else the scatter of the edges
+    g_ok = np.asarray(g["ok"], dtype=bool)
+    noise = np.array(g["residual_rms"], dtype=float, copy=True)
+    amp_snr = np.array(g["amplitude"], dtype=float, copy=True)
+    gbad = np.flatnonzero(~g_ok)
+    if gbad.size:
+        ne = max(2, int(round(EDGE_FRACTION * m)))
+        edges = np.concatenate([yb[gbad, :ne], yb[gbad, -ne:]], axis=1)
+        noise[gbad] = 1.4826 * np.median(np.abs(edges - np.median(edges, axis=1, keepdims=True)), axis=1)
+        amp_snr[gbad] = yb[gbad].max(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rms_err = err_unit * noise
+        snr = np.where(noise > 0, amp_snr / noise, np.where(amp_snr > 0, np.inf, nan))
+        low = snr < snr_min
+        # clipping: centre near an end, or the peak not back to baseline at an end
+        c = np.where(ok, sh["centroid"], mu_w)
+        sg = np.where(ok, sh["sigma"], rms_w)
+        room = np.minimum(c - x[:, 0], x[:, -1] - c)
+        near_end = np.isfinite(room) & np.isfinite(sg) & (room < CLIP_EDGE_N_SIGMA * sg)
+        ex = sh["excess"]
+        no_base = ok & ~near_end & (np.max(ex, axis=1) > EDGE_EXCESS_FRACTION * sh["amplitude"])
+        # non-Gaussian: Gaussian sigma against the window-corrected rms
+        rms_c = rms_w / iterated_window_rms_factor(window_n_sigma)
+        diff = np.abs(g["sigma"] - rms_c)
+        comb = np.hypot(g["sigma_err"], np.where(np.isfinite(rms_err), rms_err, 0.0))
+        non_g = g_ok & np.isfinite(rms_w) & (diff > NON_GAUSSIAN_THRESHOLD * g["sigma"]) & (diff > 3.0 * comb)
+    base_c = sh["c0"] + sh["slope"] * (sh["centroid"] - sh["x_ref"])
+
+    cols = {
+        "centroid_m": sh["centroid"], "centroid_err_m": sh["centroid_err"], "sigma_m": sh["sigma"], "sigma_err_m": sh["sigma_err"],
+        "rms_m": rms_w, "rms_err_m": rms_err, "rms_centroid_m": mu_w, "fwhm_m": sh["fwhm"],
+        "amplitude": sh["amplitude"], "amplitude_err": sh["amplitude_err"], "baseline": base_c, "baseline_slope_per_m": sh["slope"],
+        "chi2_red": sh["chi2_red"], "snr": snr,
+    }
+    fitted = ("centroid_m", "centroid_err_m", "sigma_m", "sigma_err_m", "fwhm_m", "amplitude", "amplitude_err", "baseline", "baseline_slope_per_m", "chi2_red")
+    lists = {k: np.asarray(v, dtype=float).tolist() for k, v in cols.items()}
+    g_sigma = np.where(g_ok, g["sigma"], nan).tolist()
+    flag_any = too_few | ~ok | low | near_end | no_base | non_g | ~np.isfinite(rms_w)
+    out = []
+    for i in range(n):
+        vals = {k: lists[k][i] for k in lists}
+        flags: tuple[str, ...] = ()
+        message = ""
+        extras = sh["extras"][i]
+        if flag_any[i]:
+            fl: list[str] = []
+            notes: list[str] = []
+            if too_few[i]:
+                fl.append("too_few_points")
+            if not ok[i]:
+                fl.append("fit_failed")
+                notes.append(f"fit failed: {sh['message'][i]}")
+                for k in fitted:
+                    vals[k] = nan
+                vals["fwhm_m"] = _fwhm_from_data(x[i], yb[i])
+            if low[i]:
+                fl.append("low_signal")
+                notes.append(f"signal-to-noise {snr[i]:.3g} below {snr_min:g}")
+            if not math.isfinite(rms_w[i]):
+                notes.append("no positive signal inside the rms window")
+            if near_end[i]:
+                fl.append("clipped")
+                notes.append(f"clipped: centre {room[i] / sg[i]:.2g} sigma from the scan end")
+            elif no_base[i]:
+                side = "low" if ex[i, 0] >= ex[i, 1] else "high"
+                fl.append("clipped")
+                notes.append(f"clipped: baseline not reached on the {side}-position side")
+            if non_g[i]:
+                fl.append("non_gaussian")
+                notes.append(f"non-Gaussian: Gaussian sigma {g['sigma'][i]:.4g} m vs rms {rms_c[i]:.4g} m")
+            flags = merge_flags(fl)
+            message = "; ".join(notes)
+        out.append(
+            ProfileResult(
+                **vals,
+                n_points=m,
+                model=model,
+                flags=flags,
+                message=message,
+                window_n_sigma=float(window_n_sigma),
+                core_sigma_m=float(extras.get("s1", nan)),
+                halo_sigma_m=float(extras.get("s2", nan)),
+                halo_fraction=float(extras.get("halo_fraction", nan)),
+                halo_fraction_err=float(extras.get("halo_fraction_err", nan)),
+                order=float(extras.get("p", nan)),
+                order_err=float(extras.get("p_err", nan)),
+                width_m=float(extras.get("w", nan)),
+                gaussian_sigma_m=g_sigma[i],
+            )
+        )
+    return out
+
+
+def _gauss_rows(fit: GaussianFit) -> dict:
+    """A single :class:`GaussianFit` as one-row arrays."""
+    return {
+        "amplitude": np.array([fit.amplitude]), "amplitude_err": np.array([fit.amplitude_err]),
+        "centroid": np.array([fit.centroid_m]), "centroid_err": np.array([fit.centroid_err_m]),
+        "sigma": np.array([fit.sigma_m]), "sigma_err": np.array([fit.sigma_err_m]),
+        "c0": np.array([fit.baseline_c0]), "slope": np.array([fit.baseline_slope_per_m]),
+        "x_ref": np.array([fit.x_ref_m]), "residual_rms": np.array([fit.residual_rms]),
+        "chi2": np.array([fit.chi2]), "chi2_red": np.array([fit.chi2_red]), "ok": np.array([fit.success]),
+    }
 
 
 def _propagate(fn: Callable[[np.ndarray], float], p: np.ndarray, cov: np.ndarray) -> float:
@@ -1166,13 +1367,152 @@ def analyze_profile(
         raise InputError(f"window_n_sigma: expected a number above sqrt(3) = 1.732, got {window_n_sigma!r}")
     x, y = _as_profile(position_m, signal)
     gauss = fit_gaussian(x, y, baseline=baseline, weights=weights)
+    g = _gauss_rows(gauss)
+    x2, y2 = x[None, :], y[None, :]
     if model == "gaussian":
-        shape = _shape_from_gaussian(gauss)
+        sh = _gauss_shape_rows(g, x2, [gauss.message])
     elif gauss.success:
-        shape = _fit_shape(x, y, gauss, model, baseline, weights)
+        sh = _shape_rows(_fit_shape(x, y, gauss, model, baseline, weights), x, model)
     else:
-        shape = _Shape(message=f"no Gaussian start for the {model} fit ({gauss.message})")
-    return _assemble(x, y, gauss, shape, model, baseline, window_n_sigma, snr_min)
+        sh = _shape_rows(_Shape(message=f"no Gaussian start for the {model} fit ({gauss.message})"), x, model)
+    too_few = np.array([not gauss.success and "needs at least" in gauss.message])
+    return _assemble_rows(x2, y2, g, sh, model, baseline, window_n_sigma, snr_min, too_few)[0]
+
+
+@dataclass(frozen=True, eq=False)
+class BatchGaussianFit:
+    """Gaussian-plus-baseline fits of many profiles (arrays over profiles).
+
+    ``params`` is ``(n, k)`` with columns ``(amplitude, centroid_m, sigma_m, c0,
+    c1_per_m)`` (``c1`` only for a linear baseline, the baseline being
+    ``c0 + c1 (x - x_ref_m)``), ``covariance`` ``(n, k, k)`` (scaled by the
+    reduced chi-square), ``success`` False with ``message`` where a fit failed.
+    """
+
+    params: np.ndarray
+    covariance: np.ndarray
+    x_ref_m: np.ndarray
+    chi2_red: np.ndarray
+    residual_rms: np.ndarray
+    success: np.ndarray
+    message: tuple[str, ...]
+    rows: dict = field(repr=False, default_factory=dict)
+
+    @property
+    def sigma_m(self) -> np.ndarray:
+        return self.params[:, 2]
+
+    @property
+    def sigma_err_m(self) -> np.ndarray:
+        return np.sqrt(np.abs(self.covariance[:, 2, 2]))
+
+
+def _check_batch(position_m, signals) -> tuple[np.ndarray, np.ndarray]:
+    y = np.atleast_2d(np.asarray(signals, dtype=float))
+    if y.ndim != 2:
+        raise InputError(f"signals: expected shape (n_profiles, n_points), got {y.shape}")
+    x = np.asarray(position_m, dtype=float)
+    if x.ndim == 1:
+        x = np.broadcast_to(x, y.shape)
+    if x.shape != y.shape:
+        raise InputError(f"position_m: expected shape ({y.shape[1]},) or {y.shape}, got {x.shape}")
+    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+        raise InputError("position_m/signals: expected finite numbers, found NaN or inf")
+    if y.shape[1] < 3:
+        raise InputError(f"signals: expected at least 3 points per profile, got {y.shape[1]}")
+    if np.any(np.diff(x, axis=1) <= 0):
+        raise InputError("position_m: expected strictly increasing positions in every row")
+    return x, y
+
+
+def fit_gaussians_batch(position_m, signals, *, baseline: str = "linear") -> BatchGaussianFit:
+    """Fit a Gaussian plus baseline to many profiles with one vectorised LM run.
+
+    The problem of every profile is scaled exactly as in :func:`fit_gaussian`
+    (positions to [-1, 1], signal by its range) and started from the same
+    :func:`start_values`; :func:`levenberg_marquardt_batch` then solves all of them
+    together, so each optimum is the single fitter's (to its tolerance).
+
+    Parameters
+    ----------
+    position_m : array_like, shape (n_points,) or (n_profiles, n_points)
+    signals : array_like, shape (n_profiles, n_points)
+    baseline : {"constant", "linear"}
+
+    Returns
+    -------
+    BatchGaussianFit
+    """
+    n_base = _check_baseline(baseline)
+    x, y = _check_batch(position_m, signals)
+    parts = [_fit_gaussians_chunk(x[i : i + BATCH_CHUNK], y[i : i + BATCH_CHUNK], n_base) for i in range(0, len(y), BATCH_CHUNK)]
+    if len(parts) == 1:
+        return parts[0]
+    rows = {key: np.concatenate([q.rows[key] for q in parts]) for key in parts[0].rows}
+    return BatchGaussianFit(
+        np.concatenate([q.params for q in parts]), np.concatenate([q.covariance for q in parts]),
+        rows["x_ref"], rows["chi2_red"], rows["residual_rms"], rows["ok"],
+        tuple(msg for q in parts for msg in q.message), rows,
+    )
+
+
+#: Profiles per chunk in the batch routines: small enough that the working
+#: arrays (chunk x points x parameters) stay in the CPU cache.
+BATCH_CHUNK = 64
+
+
+def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int) -> BatchGaussianFit:
+    """:func:`fit_gaussians_batch` on one chunk of validated rows."""
+    n, m = y.shape
+    k = 3 + n_base
+    dof = m - k
+    if dof < 2:
+        nan = np.full((n, k), np.nan)
+        msg = f"{m} points, the model needs at least {k + 2}"
+        rows, params, cov, reasons = _physical_rows(x, x[:, 0], np.ones(n), np.ones(n), nan, np.full((n, k, k), np.nan), np.full(n, np.nan), np.full(n, np.nan), dof, np.zeros(n, bool), [msg] * n, n_base)
+        return BatchGaussianFit(params, cov, rows["x_ref"], rows["chi2_red"], rows["residual_rms"], rows["ok"], tuple(reasons), rows)
+    x_ref, h, s = _scales(x, y)
+    t = (x - x_ref[:, None]) / h[:, None]
+    yn = y / s[:, None]
+    p0 = refine_start(t, yn, start_values(t, yn, baseline=BASELINES[n_base - 1]))
+
+    def resjac(p, rows):
+        tt, yy = (t, yn) if len(rows) == n else (t[rows], yn[rows])
+        inv_s = 1.0 / p[:, 2:3]
+        z = (tt - p[:, 1:2]) * inv_s
+        g = np.exp(-0.5 * z * z)
+        ag = p[:, 0:1] * g
+        # Jacobian stored parameter-major (n, k, m) for contiguous fills and products
+        jt = np.empty((len(rows), k, tt.shape[1]))
+        jt[:, 0] = g
+        np.multiply(ag * z, inv_s, out=jt[:, 1])
+        np.multiply(jt[:, 1], z, out=jt[:, 2])
+        jt[:, 3] = 1.0
+        f = ag + p[:, 3:4]
+        if n_base == 2:
+            f += p[:, 4:5] * tt
+            jt[:, 4] = tt
+        f -= yy
+        return f, jt.transpose(0, 2, 1)
+
+    lm = levenberg_marquardt_batch(resjac, p0, initial_damping=1e-4, ftol=1e-11)
+    p, conv, cost, jtj = lm.params, lm.converged, lm.cost, lm.jtj
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        try:
+            cov_int = np.linalg.inv(jtj) * (cost / dof)[:, None, None]
+        except np.linalg.LinAlgError:  # one singular problem spoils the stacked inverse
+            cov_int = np.full_like(jtj, np.inf)
+            for i in range(n):
+                try:
+                    cov_int[i] = np.linalg.inv(jtj[i]) * (cost[i] / dof)
+                except np.linalg.LinAlgError:
+                    pass
+        chi2 = cost * s * s
+        resid_rms = np.sqrt(chi2 / dof)
+    fit_ok = conv & np.all(np.isfinite(p), axis=1)
+    msgs = ["" if o else "did not converge" for o in fit_ok]
+    rows, params, cov, reasons = _physical_rows(x, x_ref, h, s, p, cov_int, chi2, resid_rms, dof, fit_ok, msgs, n_base)
+    return BatchGaussianFit(params, cov, rows["x_ref"], rows["chi2_red"], rows["residual_rms"], rows["ok"], tuple(reasons), rows)
 
 
 def fit_profiles_batch(
@@ -1183,11 +1523,12 @@ def fit_profiles_batch(
     window_n_sigma: float = 4.0,
     snr_min: float = DEFAULT_SNR_MIN,
 ) -> list[ProfileResult]:
-    """Analyse many profiles with one vectorised Levenberg-Marquardt run.
+    """Analyse many profiles at once (Gaussian model), vectorised end to end.
 
-    Gives the same Gaussian optimum as :func:`analyze_profile` with
-    ``model="gaussian"`` (same scaled problem, same start values, same cost), so
-    results agree to the fit tolerance (sigma to better than 1e-6 relative).
+    The fits come from :func:`fit_gaussians_batch`; the rms windows, noise,
+    SNR and flags are computed for all profiles together by the same code
+    :func:`analyze_profile` uses, so each result equals the single analysis to
+    the fit tolerance (sigma to better than 1e-6 relative).
 
     Parameters
     ----------
@@ -1201,83 +1542,19 @@ def fit_profiles_batch(
     -------
     list of ProfileResult
     """
-    n_base = _check_baseline(baseline)
     if not window_n_sigma > math.sqrt(3.0):
         raise InputError(f"window_n_sigma: expected a number above sqrt(3) = 1.732, got {window_n_sigma!r}")
-    y = np.atleast_2d(np.asarray(signals, dtype=float))
-    if y.ndim != 2:
-        raise InputError(f"signals: expected shape (n_profiles, n_points), got {y.shape}")
-    x = np.asarray(position_m, dtype=float)
-    if x.ndim == 1:
-        x = np.broadcast_to(x, y.shape)
-    if x.shape != y.shape:
-        raise InputError(f"position_m: expected shape ({y.shape[1]},) or {y.shape}, got {x.shape}")
-    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
-        raise InputError("position_m/signals: expected finite numbers, found NaN or inf")
-    if np.any(np.diff(x, axis=1) <= 0):
-        raise InputError("position_m: expected strictly increasing positions in every row")
-    n, m = y.shape
-    k = 3 + n_base
-    if n == 0:
+    n_base = _check_baseline(baseline)
+    x, y = _check_batch(position_m, signals)
+    if len(y) == 0:
         return []
-    if m < k + 2:
-        return [analyze_profile(x[i], y[i], baseline=baseline, window_n_sigma=window_n_sigma, snr_min=snr_min) for i in range(n)]
-    x_ref, h, s = _scales(x, y)
-    t = (x - x_ref[:, None]) / h[:, None]
-    yn = y / s[:, None]
-    p0 = start_values(t, yn, baseline=baseline)
-
-    def resjac(p, rows):
-        tt, yy = t[rows], yn[rows]
-        z = (tt - p[:, 1:2]) / p[:, 2:3]
-        g = np.exp(-0.5 * z * z)
-        ag = p[:, 0:1] * g
-        f = ag + p[:, 3:4]
-        jac = np.empty(tt.shape + (k,))
-        jac[..., 0] = g
-        jac[..., 1] = ag * z / p[:, 2:3]
-        jac[..., 2] = jac[..., 1] * z
-        jac[..., 3] = 1.0
-        if n_base == 2:
-            f = f + p[:, 4:5] * tt
-            jac[..., 4] = tt
-        return f - yy, jac
-
-    p, conv, cost = levenberg_marquardt_batch(resjac, p0)
-    r, jac = resjac(p, np.arange(n))
-    jtj = np.matmul(jac.transpose(0, 2, 1), jac)
-    dof = m - k
-    chi2_red = cost / dof
-    with np.errstate(invalid="ignore", over="ignore"):
-        try:
-            cov_all = np.linalg.inv(jtj) * chi2_red[:, None, None]
-        except np.linalg.LinAlgError:  # one singular problem spoils the stacked inverse
-            cov_all = np.stack([covariance_from_jacobian(j) * c for j, c in zip(jac, chi2_red, strict=True)])
-
-    # model-free rms on the fitted baseline (edge estimate where the fit failed)
-    base = p[:, 3:4] + (p[:, 4:5] * t if n_base == 2 else 0.0)
-    p_edge = start_values(t, yn, baseline=baseline)
-    base_edge = p_edge[:, 3:4] + (p_edge[:, 4:5] * t if n_base == 2 else 0.0)
-    fit_ok = conv & np.all(np.isfinite(p), axis=1)
-    yb = np.where(fit_ok[:, None], yn - base, yn - base_edge)
-    pw = start_values(t, yb, baseline="constant")
-    mu_w, rms_w, err_w, _ = window_moments(t, yb, n_sigma=window_n_sigma, centroid0_m=pw[:, 1], sigma0_m=pw[:, 2])
-
-    out = []
-    for i in range(n):
-        xi, yi = x[i], y[i]
-        gauss = _physical_gaussian(
-            xi, yi, x_ref[i], h[i], s[i], p[i], cov_all[i], n_base, cost[i], dof, chi2_red[i],
-            bool(fit_ok[i]), "" if fit_ok[i] else "did not converge",
-        )
-        if not gauss.success:
-            # the shared fallback path (edge baseline) is the single fitter's
-            out.append(_assemble(xi, yi, gauss, _shape_from_gaussian(gauss), "gaussian", baseline, window_n_sigma, snr_min))
-            continue
-        # window moments were computed in scaled units: convert to metres
-        # (the error per unit noise also rescales with the signal scale s)
-        win = (x_ref[i] + h[i] * mu_w[i], h[i] * rms_w[i], h[i] * err_w[i] / s[i], 0)
-        out.append(_assemble(xi, yi, gauss, _shape_from_gaussian(gauss), "gaussian", baseline, window_n_sigma, snr_min, win=win))
+    out: list[ProfileResult] = []
+    for i in range(0, len(y), BATCH_CHUNK):
+        xc, yc = np.ascontiguousarray(x[i : i + BATCH_CHUNK]), y[i : i + BATCH_CHUNK]
+        fit = _fit_gaussians_chunk(xc, yc, n_base)
+        too_few = np.full(len(yc), yc.shape[1] < 3 + n_base + 2)
+        g = fit.rows
+        out.extend(_assemble_rows(xc, yc, g, _gauss_shape_rows(g, xc, list(fit.message)), "gaussian", baseline, window_n_sigma, snr_min, too_few))
     return out
 
 

@@ -116,12 +116,11 @@ def test_batch_levenberg_marquardt_matches_nist_strd_certified_values(name, mode
         j = np.stack([jac(x, q) for q in p])
         return r, j
 
-    p, conv, cost = P.levenberg_marquardt_batch(resjac, np.stack([s1, s2]))
-    assert conv.all()
-    for q, c in zip(p, cost, strict=True):
+    lm = P.levenberg_marquardt_batch(resjac, np.stack([s1, s2]))
+    assert lm.converged.all()
+    for q, c, jtj in zip(lm.params, lm.cost, lm.jtj, strict=True):
         np.testing.assert_allclose(q, cert, rtol=1e-6)
-        j = jac(x, q)
-        se = np.sqrt(np.diag(P.covariance_from_jacobian(j)) * c / (x.size - q.size))
+        se = np.sqrt(np.diag(np.linalg.inv(jtj)) * c / (x.size - q.size))
         np.testing.assert_allclose(se, sd, rtol=1e-4)
 
 
@@ -412,7 +411,12 @@ def test_shifted_profile_gives_shifted_centroid_and_same_sigma():
 
 @pytest.mark.parametrize("baseline", ["constant", "linear"])
 def test_batch_fitter_gives_single_fitter_optimum(baseline):
-    """fit_profiles_batch agrees with analyze_profile: sigma to 1e-6 relative (scipy MINPACK LM as the reference)."""
+    """fit_profiles_batch agrees with analyze_profile: sigma to 1e-6 relative (scipy MINPACK LM as the reference).
+
+    The batch takes its last Gauss-Newton step without evaluating it, so its
+    covariance comes from the point before: first order in that step, hence
+    1e-4 on sigma_err (far below the error's own 5 % statistical spread).
+    """
     rng = np.random.default_rng(21)
     x = np.linspace(-2e-3, 2e-3, 240)
     ys = []
@@ -426,7 +430,7 @@ def test_batch_fitter_gives_single_fitter_optimum(baseline):
         assert b.flags == s.flags
         assert b.sigma_m == pytest.approx(s.sigma_m, rel=1e-6)
         assert b.centroid_m == pytest.approx(s.centroid_m, rel=1e-6, abs=1e-12)
-        assert b.sigma_err_m == pytest.approx(s.sigma_err_m, rel=1e-5)
+        assert b.sigma_err_m == pytest.approx(s.sigma_err_m, rel=1e-4)
         assert b.rms_m == pytest.approx(s.rms_m, rel=1e-6)
 
 
