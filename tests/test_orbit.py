@@ -603,3 +603,18 @@ def test_demo_thermal_drift_follows_its_sensor_with_the_25_minute_lag():
     assert corr.pearson_r > 0.9
     s = report.summary("BPM-06", "x")
     assert abs(s.peak_frequency_Hz - orbit.alias_frequency(1.8, 1.0)) <= 1.0 / 256
+
+
+def test_orbit_matrix_of_a_complete_sorted_table_equals_its_reshape_and_leaves_it_alone():
+    """Analytic: a complete table sorted by time then BPM is the wide array row by row;
+    masking low-sum readings never writes into the caller's table."""
+    rng = np.random.default_rng(32)
+    x = rng.normal(size=(50, 4))
+    total = np.ones((50, 4))
+    total[10, 2] = 0.01
+    df = _table(_times(50, 10.0), x, x.copy(), total)
+    before = df["x_m"].to_numpy().copy()
+    m = orbit.orbit_matrix(df, min_sum_fraction=0.2)
+    assert m.n_masked == 1 and np.isnan(m.x_m[10, 2])
+    np.testing.assert_array_equal(np.delete(m.x_m.ravel(), 10 * 4 + 2), np.delete(x.ravel(), 10 * 4 + 2))
+    np.testing.assert_array_equal(df["x_m"].to_numpy(), before)
