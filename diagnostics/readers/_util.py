@@ -573,6 +573,13 @@ def _time_from_numbers(values: pa.Array, path: Path, name: str, row_name: RowNam
     return pa.array(ns, TIME_TYPE, mask=nulls if nulls.any() else None)
 
 
+def contiguous(column: pa.ChunkedArray | pa.Array) -> pa.Array:
+    """One Arrow array from a chunked column (no copy when it has one chunk)."""
+    if isinstance(column, pa.Array):
+        return column
+    return column.chunk(0) if column.num_chunks == 1 else column.combine_chunks()
+
+
 def column_numpy(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
     """A float or time column as one read-only numpy array (times as int64 ns).
 
@@ -580,8 +587,7 @@ def column_numpy(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
     column without nulls the numpy array is a zero-copy view of that buffer.
     Nulls become NaN (floats).
     """
-    if isinstance(column, pa.ChunkedArray):
-        column = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
+    column = contiguous(column)
     if pa.types.is_timestamp(column.type):
         column = column.cast(pa.int64())
     return column.to_numpy(zero_copy_only=False)

@@ -104,13 +104,16 @@ def read_bpm(path: str | Path) -> pd.DataFrame:
     if empty is not None:
         raise located(p, f"{row_name(empty)}: column 'bpm' is empty (expected a BPM name)")
 
-    out: dict[str, pa.Array | pa.ChunkedArray] = {"timestamp": table.column("timestamp"), "bpm": bpm_text}
+    # each column is made contiguous once, here, so pandas need not copy it again
+    stamps = _util.contiguous(table.column("timestamp"))
+    out: dict[str, pa.Array | pa.ChunkedArray] = {"timestamp": stamps, "bpm": bpm_text}
     for plane in ("x", "y"):
         column = units[plane]
-        _util.check_finite(table.column(column), p, column, row_name)
-        out[f"{plane}_m"] = pc.multiply(table.column(column), POSITION_UNITS[column.split("_", 1)[1]])
+        values = _util.contiguous(table.column(column))
+        _util.check_finite(values, p, column, row_name)
+        out[f"{plane}_m"] = pc.multiply(values, POSITION_UNITS[column.split("_", 1)[1]])
     if "sum" in kinds:
-        total = table.column("sum")
+        total = _util.contiguous(table.column("sum"))
         if total.null_count:
             total = pc.fill_null(total, np.nan)
         _util.check_finite(total, p, "sum", row_name, allow_nan=True)
@@ -121,7 +124,7 @@ def read_bpm(path: str | Path) -> pd.DataFrame:
         if name not in kinds and name not in out:
             out[name] = table.column(name)
 
-    times = _util.column_numpy(table.column("timestamp"))
+    times = _util.column_numpy(stamps)
     in_order = _util.check_series_order(times, codes, len(bpms), p, row_name, bpms, "BPM")
     frame = _util.to_frame(out)
     if not in_order:
