@@ -511,7 +511,13 @@ class OrbitMatrix:
 
 
 def natural_order(names: Sequence[str]) -> tuple[str, ...]:
-    """Sort names with embedded numbers numerically (``BPM-2`` before ``BPM-10``)."""
+    """Sort names with embedded numbers numerically (``BPM-2`` before ``BPM-10``).
+
+    Examples
+    --------
+    >>> natural_order(["BPM-10", "BPM-2", "BPM-1"])
+    ('BPM-1', 'BPM-2', 'BPM-10')
+    """
 
     def key(name: str) -> list[object]:
         return [int(part) if part.isdigit() else part for part in re.split(r"(\d+)", name)]
@@ -869,6 +875,11 @@ def step_threshold(n_tests: int, false_alarm: float) -> float:
 
     Bonferroni: ``P(any |z| > h) <= n_tests * 2 * (1 - Phi(h)) = false_alarm``.
     The windowed statistics overlap, so the real false-alarm rate is lower.
+
+    Examples
+    --------
+    >>> round(step_threshold(2880, 1e-3), 1)  # 8 h of 10 s buckets
+    5.1
     """
     n_tests = max(int(n_tests), 1)
     return float(stats.norm.isf(false_alarm / (2.0 * n_tests)))
@@ -1321,6 +1332,13 @@ def alias_frequency(frequency_Hz: float | np.ndarray, sampling_Hz: float) -> flo
     A line at ``f`` appears at ``|f - n f_s|`` folded into ``[0, f_s / 2]``
     (METHODS.md section 5.4): 50 Hz sampled at 12 Hz appears at 2 Hz, at 10 Hz at
     0 Hz (a static offset).
+
+    Examples
+    --------
+    >>> alias_frequency(50.0, 12.0)
+    2.0
+    >>> alias_frequency(60.0, 100.0)
+    40.0
     """
     f = np.abs(np.asarray(frequency_Hz, dtype=np.float64))
     r = np.mod(f, sampling_Hz)
