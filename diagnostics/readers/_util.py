@@ -90,6 +90,8 @@ def missing_column(path: Path, name: str, present: Sequence[str], where: str = "
     """The error for a missing column, suggesting the closest present name."""
     found = ", ".join(repr(c) for c in present) or "none"
     hint = did_you_mean(name, present)
+    if not hint and len(present) == 1 and any(sep in present[0] for sep in ";\t|"):
+        hint = " (fields must be separated by commas)"
     return located(path, f"{where}missing column {name!r}{hint}; columns found: {found}")
 
 

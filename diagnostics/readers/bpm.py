@@ -78,13 +78,13 @@ def read_bpm(path: str | Path) -> pd.DataFrame:
     fmt = _util.file_format(p, "BPM readings")
     head = _util.peek_csv(p, _WHAT) if fmt == "csv" else None
     names = head.names if head is not None else _util.parquet_names(p)
+    for required in ("timestamp", "bpm"):
+        if required not in names:
+            raise _util.missing_column(p, required, names)
     units = {plane: _position_column(p, names, plane) for plane in ("x", "y")}
     kinds = {"timestamp": "time", "bpm": "name", units["x"]: "float", units["y"]: "float"}
     if "sum" in names:
         kinds["sum"] = "float"
-    for required in ("timestamp", "bpm"):
-        if required not in names:
-            raise _util.missing_column(p, required, names)
     for taken in ("x_m", "y_m"):
         if taken in names and taken not in kinds:
             raise located(p, f"column {taken!r} clashes with the converted positions (rename it)")

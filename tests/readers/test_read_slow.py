@@ -80,3 +80,8 @@ def test_parquet_slow(tmp_path, good):
 def test_units_and_channels_are_trimmed(write):
     df = read_slow(write("s.csv", HEADER + "2026-11-30T06:00:00Z,T-01 ,1,degC \n2026-11-30T06:01:00Z,T-01,2,degC\n"))
     assert df["channel"].tolist() == ["T-01", "T-01"] and df["unit"].tolist() == ["degC", "degC"]
+
+
+def test_semicolon_separated_file_gets_a_hint(write):
+    with pytest.raises(InputError, match=r"missing column 'timestamp' \(fields must be separated by commas\)"):
+        read_slow(write("s.csv", "timestamp;channel;value;unit\n2026-11-30T06:00:00Z;T-01;1;K\n"))
