@@ -66,7 +66,8 @@ class Headline:
     label : str
         What it is, for people.
     value : float or None
-        The number in SI (m, m rad) or a count; ``None`` when there is none.
+        The number in SI (m, m rad), a count, or for ``last_data`` the newest
+        time as Unix epoch seconds; ``None`` when there is none.
     text : str
         The value formatted for display (with its unit), or the empty-state text.
     detail : str

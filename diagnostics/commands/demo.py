@@ -48,6 +48,17 @@ def register(subparsers: argparse._SubParsersAction) -> None:
         help="replace an existing store (only a folder that looks like a store is removed)",
     )
     parser.add_argument(
+        "--start",
+        metavar="HH:MM",
+        help="generate only from this time of the shift (UTC; default 06:00)",
+    )
+    parser.add_argument(
+        "--hours",
+        type=float,
+        metavar="H",
+        help="generate only this many hours (default the whole 8-hour shift)",
+    )
+    parser.add_argument(
         "--no-analysis", action="store_true", help="generate and ingest only, skip the analyses"
     )
     parser.add_argument(
@@ -90,6 +101,8 @@ def run(args: argparse.Namespace) -> int:
         store,
         raw_dir=args.raw,
         seed=args.seed,
+        start=args.start,
+        hours=args.hours,
         analyse=not args.no_analysis,
         progress=lambda line: print(line, flush=True),
     )
