@@ -21,8 +21,8 @@ def test_quad_scan_sample_loads_every_step(scans):
     assert spec.particle == ParticleSpec(name="electron")
     assert spec.kinetic_energy_MeV == 150.0 and spec.energy_spread == 1e-3
     assert spec.magnet == Magnet(kind="quadrupole", name="Q-05", length_m=0.2)
-    # a field-free drift of length d has the matrix [[1, d], [0, 1]] (Wiedemann, Particle
-    # Accelerator Physics, 4th ed. 2015, ch. 7) in both planes
+    # a field-free drift of length d has the matrix [[1, d], [0, 1]] in both planes
+    # (Wiedemann, Particle Accelerator Physics, Springer: the drift-space transformation)
     np.testing.assert_array_equal(spec.transport_x, [[1.0, 4.0], [0.0, 1.0]])
     np.testing.assert_array_equal(spec.transport_y, [[1.0, 4.0], [0.0, 1.0]])
     assert [m.name for m in spec.monitors] == ["WS-02"] and spec.monitors[0].resolution_m == 1.5e-5
