@@ -612,3 +612,13 @@ def test_demo_command_builds_an_analysed_store_that_recovers_the_truth(tmp_path,
     assert (
         not list((root / "raw" / "scans").glob("*")) if (root / "raw" / "scans").exists() else True
     )
+
+
+def test_committed_samples_are_valid_inputs_for_the_readers():
+    """Every sample input is recognised and read by diagnostics.readers; the rest are docs."""
+    readers = pytest.importorskip("diagnostics.readers")
+    kinds = {}
+    for path in readers.iter_inputs([SAMPLES]):  # dark frames and docs are not inputs
+        kind, _data = readers.read_any(path)  # raises InputError if the file is not valid
+        kinds[str(path.relative_to(SAMPLES))] = kind
+    assert sorted(kinds.values()) == ["bpm", "frames", "profiles", "scans", "slow"]
