@@ -396,8 +396,9 @@ def levenberg_marquardt_batch(
     ----------
     residual_and_jacobian : callable ``f(params, rows) -> (r, J)``
         For the problems ``rows`` (int index array) and their ``params``
-        (``(len(rows), k)``), the weighted residuals ``(len(rows), m)`` and
-        Jacobian ``(len(rows), m, k)``.
+        (``(len(rows), k)``), the weighted residuals ``(len(rows), m)`` and the
+        transposed Jacobian ``(len(rows), k, m)`` (parameter-major, so that its
+        rows are contiguous).
     p0 : ndarray, shape (n_problems, k)
     max_iter : int
     xtol : float
@@ -433,9 +434,8 @@ def levenberg_marquardt_batch(
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        ja, ra = (jac, r) if idx.size == n else (jac[idx], r[idx])
-        jt = ja.transpose(0, 2, 1)
-        jtj = np.matmul(jt, ja)
+        jt, ra = (jac, r) if idx.size == n else (jac[idx], r[idx])
+        jtj = np.matmul(jt, jt.transpose(0, 2, 1))
         g = np.matmul(jt, ra[:, :, None])[:, :, 0]
         # Newton decrement g^T (J^T J)^-1 g: the most an undamped step could still
         # gain; below ftol * cost the problem is solved and needs no evaluation
@@ -491,7 +491,7 @@ def levenberg_marquardt_batch(
     miss = np.flatnonzero(np.isnan(jtj_out[:, 0, 0]))
     if miss.size:
         jm = jac[miss]
-        jtj_out[miss] = np.matmul(jm.transpose(0, 2, 1), jm)
+        jtj_out[miss] = np.matmul(jm, jm.transpose(0, 2, 1))
     return BatchLMResult(p, converged, cost, jtj_out, n_eval)
 
 
@@ -836,7 +836,7 @@ def window_moments(
     n_sigma: float = 4.0,
     centroid0_m=None,
     sigma0_m=None,
-    max_iter: int = 100,
+    max_iter: int = 20,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Centroid and rms inside an iterated ``centroid +- n_sigma * rms`` window.
 
@@ -852,6 +852,9 @@ def window_moments(
     centroid0_m, sigma0_m : array_like, optional
         Starting centre and width; default the whole-range moments.
     max_iter : int
+        At low SNR the noise in the tails can keep a window wandering by a few
+        points; the iteration stops when the window repeats any earlier one, or
+        after ``max_iter`` steps (the rms then moves by less than its error).
 
     Returns
     -------
@@ -884,7 +887,8 @@ def window_moments(
     ok = np.isfinite(mu) & np.isfinite(sig) & (sig > 0)
     lo = np.zeros(len(y), dtype=np.int64)
     hi = np.zeros(len(y), dtype=np.int64)
-    prev = (lo - 1, hi - 1)
+    hist_lo: list[np.ndarray] = []
+    hist_hi: list[np.ndarray] = []
     todo = ok.copy()
     with np.errstate(invalid="ignore", divide="ignore"):
         for _ in range(max_iter):
@@ -894,9 +898,13 @@ def window_moments(
             new_lo = np.where(todo, np.count_nonzero(xc < mu[:, None] - half, axis=1), lo)
             new_hi = np.where(todo, np.count_nonzero(xc <= mu[:, None] + half, axis=1), hi)
             same = (new_lo == lo) & (new_hi == hi)
-            # a window flipping between two ranges has settled too (take the latest)
-            cycle = (new_lo == prev[0]) & (new_hi == prev[1])
-            prev = (lo, hi)
+            # a window returning to any earlier range is cycling: it has settled as
+            # far as it will (take the latest)
+            cycle = np.zeros(len(y), dtype=bool)
+            for hl, hh in zip(hist_lo, hist_hi, strict=True):
+                cycle |= (new_lo == hl) & (new_hi == hh)
+            hist_lo.append(lo)
+            hist_hi.append(hi)
             lo, hi = new_lo, new_hi
             li, hi_ = lo[:, None], hi[:, None]
             s0 = (np.take_along_axis(c0, hi_, 1) - np.take_along_axis(c0, li, 1))[:, 0]
@@ -1493,7 +1501,7 @@ def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int) -> BatchGaus
             f += p[:, 4:5] * tt
             jt[:, 4] = tt
         f -= yy
-        return f, jt.transpose(0, 2, 1)
+        return f, jt
 
     lm = levenberg_marquardt_batch(resjac, p0, initial_damping=1e-4, ftol=1e-11)
     p, conv, cost, jtj = lm.params, lm.converged, lm.cost, lm.jtj

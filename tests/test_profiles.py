@@ -113,7 +113,7 @@ def test_batch_levenberg_marquardt_matches_nist_strd_certified_values(name, mode
 
     def resjac(p, rows):
         r = np.stack([model(x, q) - y for q in p])
-        j = np.stack([jac(x, q) for q in p])
+        j = np.stack([jac(x, q).T for q in p])  # parameter-major (k, m) per problem
         return r, j
 
     lm = P.levenberg_marquardt_batch(resjac, np.stack([s1, s2]))
