@@ -959,16 +959,18 @@ def _refine_step_time(t_s: np.ndarray, values: np.ndarray) -> int:
 
 
 def _step_size(
-    centres: np.ndarray, m: np.ndarray, j: int, tau: float, w: int, sigma: float
+    centres: np.ndarray, m: np.ndarray, j: int, tau: float, w: int, sigma: float, *, keep_bucket: bool = False
 ) -> tuple[float, float]:
     """Step size at time ``tau`` inside bucket ``j`` by least squares on bucket means.
 
     Buckets ``[j-w, j)`` and ``(j, j+w]``, model: intercept each side plus a
-    common slope; the mixed bucket ``j`` is left out.
+    common slope; the mixed bucket ``j`` is left out (kept on the right side with
+    ``keep_bucket``, when the step is at its start).
     """
     n = m.size
     left = np.arange(max(j - w, 0), j)
-    right = np.arange(j + 1, min(j + 1 + w, n))
+    first = j if keep_bucket else j + 1
+    right = np.arange(first, min(first + w, n))
     rows = np.r_[left, right]
     side = np.r_[np.zeros(left.size), np.ones(right.size)]
     good = np.isfinite(m[rows])
@@ -997,7 +999,11 @@ def _detect_steps_columns(
         means = means[:, None]
         values = values[:, None]
     bucket_ns = int(round(bucket_s * _NS_PER_S))
-    centres = (starts - starts[0]) / _NS_PER_S + 0.5 * bucket_s
+    # work on the buckets that hold data: a gap (beam off) does not empty the
+    # windows either side of it, and the fit uses the true bucket times
+    kept = np.flatnonzero(np.isfinite(means).any(axis=1))
+    means = means[kept]
+    centres = (starts[kept] - starts[0]) / _NS_PER_S + 0.5 * bucket_s
     n_buckets, n_cols = means.shape
     # half-window in buckets; a short record gets a shorter window (a quarter of it)
     w = max(min(int(round(window_s / bucket_s)), n_buckets // 4), 3)
@@ -1022,28 +1028,32 @@ def _detect_steps_columns(
         with np.errstate(invalid="ignore", divide="ignore"):
             z = np.where(valid & (noise > 0), np.abs(d) / noise, 0.0)
         h = step_threshold(int(valid.sum()), false_alarm)
-        z = z.copy()
         while True:
             k = int(np.argmax(z))
             if z[k] <= h:
                 break
             significance = float(z[k])
             z[max(k - w, 0) : k + w + 1] = 0.0
-            if abs(d[k]) < min_step_m:
+            if abs(d[k]) < min_step_m or k == 0 or k >= n_buckets:
                 continue
             # refine to one pulse within the two buckets around the boundary
-            lo_ns = starts[0] + (k - 1) * bucket_ns
-            hi_ns = starts[0] + (k + 1) * bucket_ns
-            a, b = np.searchsorted(times_ns, [lo_ns, hi_ns])
-            if b - a >= 4:
+            before_ns, after_ns = starts[kept[k - 1]], starts[kept[k]]
+            if after_ns - before_ns == bucket_ns:
+                a, b = np.searchsorted(times_ns, [before_ns, after_ns + bucket_ns])
                 i = a + _refine_step_time(times_ns[a:b], values[a:b, col])
             else:
-                i = int(np.searchsorted(times_ns, starts[0] + k * bucket_ns))
+                # a gap in the data between the two buckets: the step shows at
+                # the first pulse after the gap
+                i = int(np.searchsorted(times_ns, after_ns))
             i = min(i, times_ns.size - 1)
             t_step = int(times_ns[i])
-            j = int((t_step - starts[0]) // bucket_ns)
+            j = int(np.searchsorted(starts[kept], t_step, side="right")) - 1
             tau = (t_step - starts[0]) / _NS_PER_S
-            size, err = _step_size(centres, m, j, tau, w, sigma_white)
+            if after_ns - before_ns == bucket_ns:
+                size, err = _step_size(centres, m, j, tau, w, sigma_white)
+            else:
+                # the step sits at the start of bucket j: nothing mixed to leave out
+                size, err = _step_size(centres, m, j, tau, w, sigma_white, keep_bucket=True)
             if not math.isfinite(size):
                 size, err = float(d[k]), float(noise[k])
             found[col].append((t_step, size, err, significance))

@@ -618,3 +618,15 @@ def test_orbit_matrix_of_a_complete_sorted_table_equals_its_reshape_and_leaves_i
     assert m.n_masked == 1 and np.isnan(m.x_m[10, 2])
     np.testing.assert_array_equal(np.delete(m.x_m.ravel(), 10 * 4 + 2), np.delete(x.ravel(), 10 * 4 + 2))
     np.testing.assert_array_equal(df["x_m"].to_numpy(), before)
+
+
+def test_step_across_a_beam_off_gap_is_placed_at_the_first_pulse_after_it():
+    """Exact case: beam off from 30:00 to 40:00 and the orbit 25 um higher afterwards."""
+    rng = np.random.default_rng(33)
+    n = 80 * 60 * 10
+    t_s = np.arange(n) / 10.0
+    keep = (t_s < 1800) | (t_s >= 2400)
+    x = rng.normal(0, 2 * UM, n) + np.where(t_s >= 2400, 25 * UM, 0.0)
+    (step,) = orbit.detect_steps(_times(n, 10.0)[keep], x[keep])
+    assert step.time == START + pd.Timedelta("40min")
+    assert step.size_m == pytest.approx(25 * UM, rel=0.2)
