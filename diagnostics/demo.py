@@ -199,6 +199,19 @@ SCANS = {
         "resolution_m": SCREEN_RESOLUTION_M,
     },
 }
+SCANS_ORDER = tuple(SCANS)
+
+#: Nominal strengths of the line's quadrupoles, k1 in 1/m^2 (alternating
+#: focusing); Q-05 and Q-07 are the scanned magnets at their nominal settings
+#: and Q-08 is the fixed quadrupole inside the Q-07 scan's transport.
+QUADRUPOLE_K1_PER_M2 = {
+    "Q-01": 2.1, "Q-02": -1.9, "Q-03": 2.0, "Q-04": -1.8,
+    "Q-05": SCANS["Q-05"]["nominal_k1_per_m2"], "Q-06": -1.6,
+    "Q-07": SCANS["Q-07"]["nominal_k1_per_m2"], "Q-08": -1.5,
+    "Q-09": 1.9, "Q-10": -1.7, "Q-11": 1.8, "Q-12": -1.8,
+}  # fmt: skip
+QUADRUPOLE_LENGTH_M = 0.2
+
 #: Shot-to-shot jitter of the beam size during a scan (relative, rms).
 SCAN_SIZE_JITTER = 0.015
 
@@ -932,9 +945,6 @@ def _write_scan(root: Path, scan: str, date: str, seed: int, shape: tuple[int, i
     return folder
 
 
-SCANS_ORDER = tuple(SCANS)
-
-
 def truth(date: str = DEFAULT_DATE) -> dict[str, Any]:
     """The true parameters of the scenario as a JSON-safe dict (what ``truth.json`` holds)."""
     lay = machine_layout()
@@ -988,6 +998,10 @@ def truth(date: str = DEFAULT_DATE) -> dict[str, Any]:
         "particle": "electron",
         "kinetic_energy_MeV": KINETIC_ENERGY_MEV,
         "beta_gamma": bg,
+        "quadrupoles": {
+            q: {"k1_per_m2": QUADRUPOLE_K1_PER_M2[q], "length_m": QUADRUPOLE_LENGTH_M}
+            for q in QUADRUPOLES
+        },
         "bpm_rate_Hz": BPM_RATE_HZ,
         "temperature": {
             "sensors": list(TEMPERATURE_SENSORS),
