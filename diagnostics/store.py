@@ -102,6 +102,20 @@ SCHEMA_VERSION = "1"
 DEVICE_COLUMNS = {"bpm": "bpm", "slow": "channel", "profiles": "device", "frames": "device",
                   "scans": "name"}
 
+#: Width of the rollup buckets: every BPM or slow file gets a companion file of
+#: per-device, per-10-s partial aggregates (count, sum, sum of squares, min, max of
+#: each numeric column), written and made live with it.  A trend whose bucket is
+#: a multiple of 10 s over a window aligned to 10 s reads these instead of the
+#: readings (100 readings of one BPM at 10 Hz become one row).
+ROLLUP_NS = 10 * 10**9
+
+#: The rollup kind of each readings kind (folder ``STORE/rollup/<kind>/date=.../``).
+ROLLUP_KINDS = {"bpm": "rollup/bpm", "slow": "rollup/slow"}
+
+#: How :meth:`Store.trend` may compute: from the rollups when it can (``auto``),
+#: always from the rollups (``rollup``; refused when not aligned) or from the readings.
+TREND_METHODS = ("auto", "rollup", "raw")
+
 #: Statuses of an ingested input.
 INGEST_STATUSES = ("stored", "duplicate", "quarantined")
 
@@ -450,6 +464,58 @@ def _split_by_date(table: pa.Table) -> list[tuple[str, pa.Table]]:
         mask = pa.array(days == day)
         out.append((_date_of_ns(int(day) * _NS_PER_DAY), table.filter(mask)))
     return out
+
+
+def rollup_table(table: pa.Table, device_column: str) -> pa.Table:
+    """Per device and :data:`ROLLUP_NS` bucket: count, sum, sum of squares, min, max.
+
+    For each numeric column ``c`` (nulls and NaN skipped) the result has ``c__n``
+    (int64), ``c__sum``, ``c__sumsq``, ``c__min``, ``c__max`` (float64, null when the
+    bucket has no value); ``timestamp`` is the bucket start.  Combining rows of
+    several files is exact up to rounding: sums add, minima take the minimum.
+    """
+    ts = table.column("timestamp").cast(pa.int64()).to_numpy()
+    enc = pc.dictionary_encode(table.column(device_column).combine_chunks())
+    codes = enc.indices.to_numpy(zero_copy_only=False).astype(np.int64)
+    n_dev = max(len(enc.dictionary), 1)
+    buckets = ts // ROLLUP_NS  # floor, also before 1970
+    b0 = int(buckets.min()) if len(buckets) else 0
+    key = (buckets - b0) * n_dev + codes
+    n_keys = int(key.max()) + 1 if len(key) else 0
+    uniq = None
+    if n_keys > 4 * len(key) + 1024:  # sparse in time: compact the keys first
+        uniq, key = np.unique(key, return_inverse=True)
+        n_keys = len(uniq)
+    occupied = np.flatnonzero(np.bincount(key, minlength=n_keys))
+    raw_key = occupied if uniq is None else uniq[occupied]
+    fields = [_field("timestamp", _TS, "UTC (bucket start)"), _field(device_column, pa.string())]
+    arrays = [pa.array((raw_key // n_dev + b0) * ROLLUP_NS, pa.int64()).cast(_TS),
+              enc.dictionary.cast(pa.string()).take(pa.array(raw_key % n_dev))]
+    for f in table.schema:
+        if f.name == "timestamp" or not (pa.types.is_floating(f.type) or pa.types.is_integer(f.type)):
+            continue
+        v = table.column(f.name).to_numpy().astype(np.float64, copy=False)
+        ok = ~np.isnan(v)
+        count = np.bincount(key, weights=ok, minlength=n_keys)[occupied].astype(np.int64)
+        v0 = np.where(ok, v, 0.0)
+        total = np.bincount(key, weights=v0, minlength=n_keys)[occupied]
+        squares = np.bincount(key, weights=v0 * v0, minlength=n_keys)[occupied]
+        lo = np.full(n_keys, np.nan)
+        hi = np.full(n_keys, np.nan)
+        np.fmin.at(lo, key, v)  # fmin/fmax skip NaN
+        np.fmax.at(hi, key, v)
+        empty = count == 0
+        unit = _unit_of(f.name)
+        for suffix, values, u in (("__sum", total, unit), ("__sumsq", squares,
+                                  None if unit is None else f"({unit})^2"),
+                                  ("__min", lo[occupied], unit), ("__max", hi[occupied], unit)):
+            fields.append(_field(f.name + suffix, pa.float64(), u or "arb"))
+            arrays.append(pa.array(values, pa.float64(), mask=empty))
+        fields.append(_field(f.name + "__n", pa.int64(), "count"))
+        arrays.append(pa.array(count, pa.int64()))
+    return pa.Table.from_arrays(arrays, schema=pa.schema(
+        fields, metadata={"schema_version": SCHEMA_VERSION, "kind": "rollup",
+                          "rollup_ns": str(ROLLUP_NS)}))
 
 
 def _json_or_none(value: Any) -> str | None:
@@ -919,8 +985,12 @@ class Store:
         table = table.replace_schema_metadata({**schema.metadata, b"source": source.encode()})
         parts = _split_by_date(_sorted_by_time(table))
         entries = self._write_files(kind, parts, sha256, **_readings_write(table.schema))
-        with self._catalog.connect() as con:
-            self._catalog.register_files(con, entries, [sha256])
+        rollups = [(date, rollup_table(part, DEVICE_COLUMNS[kind])) for date, part in parts]
+        rollup_entries = self._write_files(ROLLUP_KINDS[kind], rollups, sha256,
+                                           **_readings_write(rollups[0][1].schema)
+                                           ) if rollups else []
+        with self._catalog.connect() as con:  # raw files and their rollups go live together
+            self._catalog.register_files(con, entries + rollup_entries, [sha256])
         return [self.root / e["path"] for e in entries]
 
     # ------------------------------------------------------------------ writers
@@ -1702,7 +1772,7 @@ class Store:
 
     def trend(self, kind: str, value_columns: str | Sequence[str], *, bucket: Any = "1min",
               start: Any = None, end: Any = None, devices: str | Iterable[str] | None = None,
-              device_column: str | None = None) -> pd.DataFrame:
+              device_column: str | None = None, method: str = "auto") -> pd.DataFrame:
         """Per device and time bucket: mean, min, max, rms and count of each value column.
 
         Runs in an in-memory DuckDB over the live Parquet files of the window
@@ -1726,6 +1796,12 @@ class Store:
             Device names to keep.
         device_column : str, optional
             Column to group by; default :data:`DEVICE_COLUMNS` of the kind.
+        method : {"auto", "rollup", "raw"}
+            ``raw`` aggregates the readings.  ``rollup`` combines the 10-s partial
+            aggregates stored with BPM and slow readings (:func:`rollup_table`):
+            for buckets that are multiples of 10 s over windows on 10-s boundaries
+            it gives the same numbers (to rounding) from about 1/100 of the rows.
+            ``auto`` (default) takes the rollups whenever they apply.
 
         Returns
         -------
@@ -1739,6 +1815,8 @@ class Store:
         value_columns = [value_columns] if isinstance(value_columns, str) else list(value_columns)
         if not value_columns:
             raise InputError("trend: give at least one value column")
+        if method not in TREND_METHODS:
+            raise InputError(f"trend: method {method!r} is not one of {TREND_METHODS}")
         if kind.startswith("results/"):
             self._result_kind(kind.split("/", 1)[1])
         elif kind not in STORE_KINDS:
@@ -1764,14 +1842,25 @@ class Store:
                 if not (pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_null(t)):
                     raise InputError(f"trend: column {c!r} of {kind} is {t}, not numeric")
             if not rows:
+                if method == "rollup":
+                    raise InputError(f"trend: no {kind} readings in the window to roll up")
                 return _empty_trend(out_cols, value_columns)
+            use_rollup, why = False, f"kind {kind!r} has no rollups"
+            if kind in ROLLUP_KINDS and method != "raw":
+                rollup_rows = self._snapshot(ROLLUP_KINDS[kind], t0, t1)
+                why = self._rollup_unusable(rows, rollup_rows, dev_col, value_columns, width_ns,
+                                            t0, t1, kind)
+                if why is None:
+                    rows, use_rollup = rollup_rows, True
+            if method == "rollup" and not use_rollup:
+                raise InputError(f"trend: cannot use the rollups: {why}")
             paths = [str(self.root / r["path"]) for r in rows]
             # the time filter is only needed where a file reaches outside the window
             lo = None if t0 is None or all(r["tmin_ns"] >= _ns(t0) for r in rows) else t0
             hi = None if t1 is None or all(r["tmax_ns"] < _ns(t1) for r in rows) else t1
             signed = any(r["tmin_ns"] < 0 for r in rows)  # readings before 1970
             sql, params = _trend_sql(paths, dev_col, value_columns, width_ns, lo, hi, devices,
-                                     signed=signed)
+                                     signed=signed, rollup=use_rollup)
             con = duckdb.connect(":memory:", config={"threads": 2, "memory_limit": "2GB"})
             try:
                 con.execute("SET allowed_directories = " + _sql_list([str(self.root) + os.sep]))
@@ -1793,6 +1882,34 @@ class Store:
                 df[c] = df[c].astype("int64" if c.endswith("_count") else "float64")
             return df[out_cols].reset_index(drop=True)
         raise StoreError(f"{self.root}: files of {kind!r} kept changing while querying")
+
+    def _rollup_unusable(self, rows, rollup_rows, dev_col, value_columns, width_ns, t0, t1,
+                         kind) -> str | None:
+        """Why the rollups cannot answer this trend (``None`` when they can)."""
+        if dev_col != DEVICE_COLUMNS[kind]:
+            return f"they are grouped by {DEVICE_COLUMNS[kind]!r}, not {dev_col!r}"
+        if width_ns % ROLLUP_NS:
+            return f"the bucket is not a multiple of {ROLLUP_NS // 10**9} s"
+        for name, t in (("start", t0), ("end", t1)):
+            if t is not None and _ns(t) % ROLLUP_NS:
+                return f"{name} {t.isoformat()} is not on a {ROLLUP_NS // 10**9}-s boundary"
+        if not rollup_rows or self._sources_of(rows) != self._sources_of(rollup_rows):
+            return "some files in the window have no rollup (written by an older version)"
+        schema = self._unified(rollup_rows, self._base_schema(ROLLUP_KINDS[kind]))
+        missing = [c for c in value_columns if schema.get_field_index(c + "__n") < 0]
+        if missing:
+            return f"no rollup of column {missing[0]!r}"
+        return None
+
+    def _sources_of(self, rows: Sequence[sqlite3.Row]) -> set[str]:
+        paths = [r["path"] for r in rows]
+        out: set[str] = set()
+        for i in range(0, len(paths), 500):
+            chunk = paths[i:i + 500]
+            out.update(r["sha256"] for r in self._catalog.query(
+                "SELECT DISTINCT sha256 FROM file_sources WHERE path IN (" +
+                ",".join("?" for _ in chunk) + ")", chunk))
+        return out
 
     # ------------------------------------------------------------------ compaction
     def compact(self, *, kinds: str | Iterable[str] | None = None,
@@ -1916,7 +2033,7 @@ class Store:
         known = {r["path"] for r in self._catalog.query("SELECT path FROM files")}
         now = time.time()
         n = 0
-        for top in [*STORE_KINDS, "results"]:
+        for top in [*STORE_KINDS, "rollup", "results"]:
             base = self.root / top
             if not base.is_dir():
                 continue
@@ -1985,17 +2102,25 @@ def _bucket_ns(bucket: Any) -> int:
     return ns
 
 
-def _trend_sql(paths, dev_col, value_columns, width_ns, t0, t1, devices, *, signed=True):
+def _trend_sql(paths, dev_col, value_columns, width_ns, t0, t1, devices, *, signed=True,
+               rollup=False):
     dev = _quote_ident(dev_col)
     aggs = []
     for c in value_columns:
         q = _quote_ident(c)
+        names = {s: _quote_ident(f"{c}_{s}") for s in ("mean", "min", "max", "rms", "count")}
+        if rollup:  # combine the partial aggregates of the 10-s buckets
+            n, sm, sq = (_quote_ident(c + x) for x in ("__n", "__sum", "__sumsq"))
+            aggs += [f"sum({sm}) / nullif(sum({n}), 0) AS {names['mean']}",
+                     f"min({_quote_ident(c + '__min')}) AS {names['min']}",
+                     f"max({_quote_ident(c + '__max')}) AS {names['max']}",
+                     f"sqrt(sum({sq}) / nullif(sum({n}), 0)) AS {names['rms']}",
+                     f"CAST(sum({n}) AS BIGINT) AS {names['count']}"]
+            continue
         v = f"CAST({q} AS DOUBLE)"
-        aggs += [f"avg({v}) AS {_quote_ident(c + '_mean')}",
-                 f"min({v}) AS {_quote_ident(c + '_min')}",
-                 f"max({v}) AS {_quote_ident(c + '_max')}",
-                 f"sqrt(avg({v} * {v})) AS {_quote_ident(c + '_rms')}",
-                 f"count({q}) AS {_quote_ident(c + '_count')}"]
+        aggs += [f"avg({v}) AS {names['mean']}", f"min({v}) AS {names['min']}",
+                 f"max({v}) AS {names['max']}", f"sqrt(avg({v} * {v})) AS {names['rms']}",
+                 f"count({q}) AS {names['count']}"]
     # bucket start in ns since the epoch, floored (integer arithmetic: exact, and
     # much cheaper than time_bucket on TIMESTAMPTZ, which needs ICU time zones)
     e = "epoch_ns(timestamp)"
@@ -2028,7 +2153,8 @@ def _empty_trend(out_cols: Sequence[str], value_columns: Sequence[str]) -> pd.Da
 
 
 __all__ = [
-    "BASE_SCHEMAS", "DEVICE_COLUMNS", "SCHEMA_VERSION", "STORE_KINDS", "CompactSummary",
+    "BASE_SCHEMAS", "DEVICE_COLUMNS", "ROLLUP_KINDS", "ROLLUP_NS", "SCHEMA_VERSION",
+    "STORE_KINDS", "TREND_METHODS", "CompactSummary", "rollup_table",
     "CompactedPartition", "IngestOutcome", "IngestSummary", "Store", "collect_inputs",
     "scan_id_of",
 ]

@@ -62,10 +62,11 @@ def filled(tmp_path_factory):
     return store, df
 
 
+@pytest.mark.parametrize("method", ["raw", "rollup"])
 @pytest.mark.parametrize("bucket", ["10s", "1min", "5min", "7min", "1h"])
-def test_trend_equals_pandas_grouper_reference(filled, bucket):
+def test_trend_equals_pandas_grouper_reference(filled, bucket, method):
     store, df = filled
-    got = store.trend("bpm", ["x_m", "sum"], bucket=bucket)
+    got = store.trend("bpm", ["x_m", "sum"], bucket=bucket, method=method)
     ref = reference(df, ["x_m", "sum"], bucket)
     assert list(got.columns) == list(ref.columns)
     pd.testing.assert_frame_equal(got, ref, check_dtype=False, rtol=1e-12, atol=0)
@@ -73,11 +74,12 @@ def test_trend_equals_pandas_grouper_reference(filled, bucket):
     assert got["sum_count"].sum() == df["sum"].notna().sum()
 
 
-def test_trend_window_and_device_selection(filled):
+@pytest.mark.parametrize("method", ["raw", "rollup"])
+def test_trend_window_and_device_selection(filled, method):
     store, df = filled
     start, end = "2026-11-30T23:55:00Z", pd.Timestamp("2026-12-01T00:20:00Z")
     got = store.trend("bpm", "y_m", bucket="5min", start=start, end=end,
-                      devices=["BPM-02", "BPM-04"])
+                      devices=["BPM-02", "BPM-04"], method=method)
     sel = df[(df.timestamp >= pd.Timestamp(start)) & (df.timestamp < end)
              & df.bpm.isin(["BPM-02", "BPM-04"])]
     ref = reference(sel, ["y_m"], "5min")
@@ -100,20 +102,23 @@ def test_empty_window_gives_empty_well_typed_frame(filled, tmp_path):
     assert none.empty and list(none.columns)[:2] == ["device", "timestamp"]
 
 
-def test_date_partitions_outside_the_window_are_not_read(tmp_path):
+@pytest.mark.parametrize("method", ["raw", "rollup"])
+def test_date_partitions_outside_the_window_are_not_read(tmp_path, method):
     """Partition pruning: a window on one day never opens the other day's files,
-    shown by damaging those files after they were registered."""
+    shown by damaging those files (readings and rollups) after they were registered."""
     store = Store(tmp_path / "store")
     df = readings(600, start=pd.Timestamp("2026-11-30T23:30:00Z"))
     store.write_bpm(df, sha256="ab" * 32, source="night.csv")
-    day1 = [p for p in store.live_files("bpm") if "date=2026-11-30" in str(p)]
-    assert len(day1) == 1
-    day1[0].write_bytes(b"not parquet any more")
-    got = store.trend("bpm", "x_m", bucket="1min", start="2026-12-01", end="2026-12-02")
+    day1 = [p for p in store.live_files() if "date=2026-11-30" in str(p)]
+    assert len(day1) == 2  # readings and their rollup
+    for p in day1:
+        p.write_bytes(b"not parquet any more")
+    got = store.trend("bpm", "x_m", bucket="1min", start="2026-12-01", end="2026-12-02",
+                      method=method)
     ref = reference(df[df.timestamp >= pd.Timestamp("2026-12-01T00:00Z")], ["x_m"], "1min")
     pd.testing.assert_frame_equal(got, ref, check_dtype=False, rtol=1e-12, atol=0)
     with pytest.raises(Exception, match="(?i)parquet|magic"):
-        store.trend("bpm", "x_m", start="2026-11-30", end="2026-12-01")
+        store.trend("bpm", "x_m", start="2026-11-30", end="2026-12-01", method=method)
 
 
 def test_trend_of_slow_channels_and_results(tmp_path):
@@ -175,3 +180,41 @@ def test_buckets_floor_before_the_epoch(tmp_path):
     ref = reference(df, ["x_m"], "1min")
     pd.testing.assert_frame_equal(got, ref, check_dtype=False, rtol=1e-12, atol=0)
     assert got["timestamp"].min() == pd.Timestamp("1969-12-31T23:58:00Z")
+
+
+def test_rollup_is_refused_where_it_does_not_apply_and_auto_falls_back(filled):
+    store, df = filled
+    with pytest.raises(InputError, match="not a multiple of 10 s"):
+        store.trend("bpm", "x_m", bucket="15s", method="rollup")
+    with pytest.raises(InputError, match="not on a 10-s boundary"):
+        store.trend("bpm", "x_m", start="2026-11-30T23:50:05Z", method="rollup")
+    with pytest.raises(InputError, match="method 'fast'"):
+        store.trend("bpm", "x_m", method="fast")
+    start = pd.Timestamp("2026-11-30T23:50:05Z")  # unaligned: auto reads the readings
+    got = store.trend("bpm", "x_m", bucket="15s", start=start)
+    pd.testing.assert_frame_equal(got, reference(df[df.timestamp >= start], ["x_m"], "15s"),
+                                  check_dtype=False, rtol=1e-12, atol=0)
+
+
+def test_rollup_table_matches_numpy_per_bucket():
+    """The 10-s partial aggregates of one file, against numpy over each bucket's values."""
+    import pyarrow as pa
+
+    from diagnostics.store import rollup_table
+
+    df = readings(400)
+    df.loc[::7, "sum"] = np.nan
+    table = pa.Table.from_pandas(df, preserve_index=False)
+    table = table.set_column(4, "sum", pa.array(df["sum"], from_pandas=True))
+    r = rollup_table(table, "bpm").to_pandas()
+    key = (df.timestamp.astype("int64") // 10**10) * 10**10
+    for (dev, b), g in df.groupby([df.bpm, key]):
+        row = r[(r.bpm == dev) & (r.timestamp.astype("int64") == b)]
+        assert len(row) == 1
+        v = g["sum"].dropna().to_numpy()
+        assert row["sum__n"].item() == v.size
+        if v.size:
+            assert row["sum__sum"].item() == pytest.approx(v.sum(), rel=1e-14)
+            assert row["sum__sumsq"].item() == pytest.approx((v * v).sum(), rel=1e-14)
+            assert (row["sum__min"].item(), row["sum__max"].item()) == (v.min(), v.max())
+    assert r["x_m__n"].sum() == len(df)
