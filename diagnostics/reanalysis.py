@@ -29,6 +29,8 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from diagnostics import pipeline
 from diagnostics.errors import InputError
@@ -36,8 +38,9 @@ from diagnostics.errors import InputError
 #: Result kinds reanalysis can redo.
 REANALYSIS_KINDS = ("profiles", "frames", "scans")
 
-#: Largest number of raw rows in one task (a stored file with more is split).
-MAX_TASK_ROWS = 2000
+#: Largest number of raw rows in one task (a stored file with more is split): profiles
+#: are small (a few kB each), frames are not (a 1920x1200 16-bit frame is 4.6 MB).
+MAX_TASK_ROWS = {"profiles": 2000, "frames": 32, "scans": 1}
 
 #: Records written per ``write_results`` call (bounds memory on long archives).
 WRITE_CHUNK_ROWS = 50_000
@@ -45,11 +48,17 @@ WRITE_CHUNK_ROWS = 50_000
 
 @dataclass(frozen=True)
 class Partition:
-    """One task's share of the work: the raw ids of (part of) one stored file."""
+    """One task's share of the work: raw ids held by (part of) one stored file.
+
+    ``start_ns``/``end_ns`` bound the rows' timestamps (``end`` exclusive), so the
+    task reads only the stored files that overlap them.
+    """
 
     kind: str
     file: str
     ids: tuple[str, ...]
+    start_ns: int | None = None
+    end_ns: int | None = None
 
 
 @dataclass(frozen=True)
@@ -92,13 +101,20 @@ def _chunks(ids: Sequence[str], size: int) -> list[tuple[str, ...]]:
     return [tuple(ids[i:i + size]) for i in range(0, len(ids), size)]
 
 
+def _file_rows(path: Path) -> pa.Table:
+    """``id`` and ``timestamp`` of the rows of one stored file (a column read, no arrays)."""
+    return pq.read_table(path, columns=["id", "timestamp"])
+
+
 def plan(store: Any, kind: str, *, start: Any = None, end: Any = None,
-         max_task_rows: int = MAX_TASK_ROWS) -> list[Partition]:
+         max_task_rows: int | None = None) -> list[Partition]:
     """The tasks of a reanalysis: raw ids grouped by the stored file holding them.
 
-    Profiles and frames are grouped by their stored Parquet file (split into
-    pieces of at most ``max_task_rows``); each scan is one task.  The order is
-    deterministic (by file, then id).
+    Profiles and frames are grouped by their live Parquet file
+    (``Store.live_files``; pieces of at most ``max_task_rows``), and only ids the
+    store's index lists for the window are kept (so superseded scan versions and
+    rows outside the window drop out).  Each scan is one task.  The order is
+    deterministic: by file, then by time and id.
     """
     if kind not in REANALYSIS_KINDS:
         raise InputError(f"reanalyze: --kind must be one of {', '.join(REANALYSIS_KINDS)}, got {kind!r}")
@@ -111,24 +127,27 @@ def plan(store: Any, kind: str, *, start: Any = None, end: Any = None,
     index = store.profile_index(start=start, end=end) if kind == "profiles" else store.frame_index(start=start, end=end)
     if len(index) == 0:
         return []
-    file_col = next((c for c in ("file", "path", "part", "sha256", "source") if c in index.columns), None)
-    index = index.assign(_id=index["id"].astype(str))
-    if file_col is None:
-        index = index.assign(_file="")
-    else:
-        index = index.assign(_file=index[file_col].astype(str))
+    wanted = set(index["id"].astype(str))
+    max_task_rows = max_task_rows or MAX_TASK_ROWS[kind]
     parts: list[Partition] = []
-    for file, group in index.sort_values(["_file", "_id"]).groupby("_file", sort=True):
-        for ids in _chunks(list(group["_id"]), max_task_rows):
-            parts.append(Partition(kind, str(file), ids))
+    for path in store.live_files(kind):
+        table = _file_rows(path)
+        ids = table.column("id").to_pylist()
+        times = table.column("timestamp").cast(pa.int64()).to_pylist()
+        rows = sorted((t, str(i)) for i, t in zip(ids, times, strict=True) if str(i) in wanted)
+        for k in range(0, len(rows), max_task_rows):
+            chunk = rows[k:k + max_task_rows]
+            parts.append(Partition(kind, str(Path(path).relative_to(store.root)), tuple(i for _t, i in chunk),
+                                   chunk[0][0], chunk[-1][0] + 1))
     return parts
 
 
-def run_partition(store_root: str, kind: str, ids: Sequence[str], options_json: str) -> list[dict[str, Any]]:
+def run_partition(store_root: str, kind: str, ids: Sequence[str], options_json: str,
+                  start_ns: int | None = None, end_ns: int | None = None) -> list[dict[str, Any]]:
     """One reanalysis task: read the raw rows ``ids`` from the store and analyse them.
 
     Runs on a Dask worker (or in-process for a serial run): it opens the store
-    read-only itself, so only names travel to it.
+    read-only itself, so only names and numbers travel to it.
     """
     import json
 
@@ -136,11 +155,15 @@ def run_partition(store_root: str, kind: str, ids: Sequence[str], options_json: 
 
     options = pipeline.AnalysisOptions.from_mapping(json.loads(options_json))
     store = Store(store_root, create=False, read_only=True)
+    if kind == "scans":
+        return [pipeline.analyze_scan_spec(scan_id, store.load_scan(scan_id), options) for scan_id in ids]
+    start = None if start_ns is None else pd.Timestamp(start_ns, unit="ns", tz="UTC")
+    end = None if end_ns is None else pd.Timestamp(end_ns, unit="ns", tz="UTC")
     if kind == "profiles":
-        return pipeline.analyze_profile_items(pipeline.profile_items(store, ids=list(ids), with_extra=True), options)
-    if kind == "frames":
-        return pipeline.analyze_frame_items(pipeline.frame_items(store, ids=list(ids), with_extra=True), options)
-    return [pipeline.analyze_scan_spec(scan_id, store.load_scan(scan_id), options) for scan_id in ids]
+        items = pipeline.profile_items(store, ids=ids, start=start, end=end)
+        return pipeline.analyze_profile_items(items, options)
+    items = pipeline.frame_items(store, ids=ids, start=start, end=end)
+    return pipeline.analyze_frame_items(items, options)
 
 
 class _Progress:
@@ -186,7 +209,7 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
               options: pipeline.AnalysisOptions | Mapping | None = None, scheduler: str | None = None,
               workers: int = 2, serial: bool = False, version: str | None = None,
               progress: bool | None = None, write: bool = True,
-              max_task_rows: int = MAX_TASK_ROWS) -> tuple[ReanalysisSummary, list[dict[str, Any]]]:
+              max_task_rows: int | None = None) -> tuple[ReanalysisSummary, list[dict[str, Any]]]:
     """Reanalyse part of the archive and write the rows as a new result-set version.
 
     Parameters
@@ -245,7 +268,7 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
     if serial:
         label = "serial"
         for i, part in enumerate(parts):
-            results[i] = run_partition(root, kind, part.ids, options_json)
+            results[i] = run_partition(root, kind, part.ids, options_json, part.start_ns, part.end_ns)
             if bar:
                 bar.step()
             flush()
@@ -254,8 +277,8 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
 
         client, cluster, label = _start_client(scheduler, workers)
         try:
-            futures = [client.submit(run_partition, root, kind, part.ids, options_json, pure=False)
-                       for part in parts]
+            futures = [client.submit(run_partition, root, kind, part.ids, options_json, part.start_ns,
+                                     part.end_ns, pure=False) for part in parts]
             position = {f.key: i for i, f in enumerate(futures)}
             for future in as_completed(futures):
                 results[position[future.key]] = future.result()
