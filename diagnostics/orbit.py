@@ -1838,6 +1838,14 @@ def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
     return [(int(a), int(b)) for a, b in zip(change[::2], change[1::2], strict=True)]
 
 
+def bucket_grid(times_ns: np.ndarray, bucket_s: float) -> np.ndarray:
+    """Bucket starts (int64 ns) that :func:`bucket_means` uses for these sorted times."""
+    bucket_ns = int(round(bucket_s * _NS_PER_S))
+    origin = int(times_ns[0] // bucket_ns * bucket_ns)
+    n = int((times_ns[-1] - origin) // bucket_ns) + 1
+    return origin + np.arange(n, dtype=np.int64) * bucket_ns
+
+
 def transmission(
     matrix: OrbitMatrix,
     *,
@@ -1846,13 +1854,16 @@ def transmission(
     bucket_s: float = 10.0,
     loss_threshold: float = 0.01,
     min_duration_s: float = 60.0,
+    currents: Mapping[str, np.ndarray] | None = None,
 ) -> tuple[tuple[TransmissionPair, ...], tuple[LossEvent, ...], np.ndarray, np.ndarray]:
     """Relative transmission between consecutive stations and loss events.
 
     For each pair of consecutive BPMs (line order) the ratio of bucket-mean sum
     signals ``S_down / S_up`` is divided by the same ratio in the reference
     (``reference_sum``, or the pulses in ``reference_mask``), so 1.0 means "as
-    in the reference".  A loss event is a run of buckets with ratio below
+    in the reference".  Beam-current channels (``currents``: name -> values on
+    the buckets of :func:`bucket_grid`) act as stations upstream of the first
+    BPM: ``S_first / I``.  A loss event is a run of buckets with ratio below
     ``1 - loss_threshold`` lasting at least ``min_duration_s``; its size is the
     mean fractional drop with the standard error of the bucket values.
 
@@ -1862,14 +1873,12 @@ def transmission(
     events : tuple of LossEvent
     starts_ns : ndarray, shape (n_buckets,)
     ratios : ndarray, shape (n_buckets, n_bpms - 1)
+        Normalised ratios of the BPM pairs.
     """
     starts, means, _ = bucket_means(matrix.times_ns, matrix.sum, bucket_s)
-    n_pairs = max(len(matrix.bpms) - 1, 0)
-    if n_pairs == 0:
-        return (), (), starts, np.zeros((starts.size, 0))
+    if reference_mask is None:
+        reference_mask = np.ones(matrix.times_ns.size, dtype=bool)
     if reference_sum is None:
-        if reference_mask is None:
-            reference_mask = np.ones(matrix.times_ns.size, dtype=bool)
         with _quiet_nanmean():
             reference_sum = np.nanmean(matrix.sum[reference_mask], axis=0)
     reference_sum = np.asarray(reference_sum, dtype=np.float64)
@@ -1880,12 +1889,12 @@ def transmission(
     ratios = np.where(np.isfinite(ratios), ratios, np.nan)
     bucket_ns = int(round(bucket_s * _NS_PER_S))
     min_buckets = max(int(math.ceil(min_duration_s / bucket_s - 1e-9)), 1)
-    pairs, events = [], []
-    for i in range(n_pairs):
-        up, down = matrix.bpms[i], matrix.bpms[i + 1]
-        col = ratios[:, i]
+    pairs: list[TransmissionPair] = []
+    events: list[LossEvent] = []
+
+    def add(up: str, down: str, col: np.ndarray) -> None:
         if not np.isfinite(col).any():
-            continue
+            return
         last = col[np.isfinite(col)][-1]
         pairs.append(TransmissionPair(up, down, float(np.nanmean(col)), float(np.nanmin(col)), float(last)))
         with np.errstate(invalid="ignore"):
@@ -1906,6 +1915,18 @@ def transmission(
                     err,
                 )
             )
+
+    if matrix.bpms and currents:
+        ref_times = matrix.times_ns[reference_mask]
+        in_ref = (starts >= ref_times.min()) & (starts <= ref_times.max()) if ref_times.size else starts >= 0
+        for name, current in currents.items():
+            current = np.asarray(current, dtype=np.float64)
+            with np.errstate(invalid="ignore", divide="ignore"), _quiet_nanmean():
+                ratio = means[:, 0] / current
+                ratio = ratio / np.nanmean(ratio[in_ref])
+            add(str(name), matrix.bpms[0], np.where(np.isfinite(ratio), ratio, np.nan))
+    for i in range(ratios.shape[1]):
+        add(matrix.bpms[i], matrix.bpms[i + 1], ratios[:, i])
     events.sort(key=lambda e: e.start)
     return tuple(pairs), tuple(events), starts, ratios
 
@@ -2009,6 +2030,7 @@ def analyze_orbit(
     loss_threshold: float = 0.01,
     min_loss_duration: object = "1min",
     min_sum_fraction: float | None = 0.2,
+    current_channels: Sequence[str] = (),
     keep_trends: bool = True,
 ) -> OrbitReport:
     """Analyse one stretch of BPM readings (see the module docstring).
@@ -2058,6 +2080,9 @@ def analyze_orbit(
         Shortest loss event (1 min).
     min_sum_fraction : float or None
         Positions with a sum below this fraction of the BPM's median are ignored.
+    current_channels : sequence of str
+        Slow channels that measure the beam current upstream of the first BPM;
+        each adds a transmission pair ``channel -> first BPM``.
     keep_trends : bool
         Attach the decimated series (:class:`OrbitTrends`).
 
@@ -2262,6 +2287,16 @@ def analyze_orbit(
                                     "channel does not change" if flags_c else "")
                 )
 
+    currents = None
+    if current_channels:
+        if slow_df is None or slow_df.empty:
+            raise InputError("option current_channels: no slow table given (expected slow_df with those channels)")
+        chosen = slow_df[slow_df["channel"].astype(str).isin([str(c) for c in current_channels])]
+        on_grid = slow_on_buckets(chosen, bucket_grid(times_ns, step_bucket_s), step_bucket_s)
+        missing = [str(c) for c in current_channels if str(c) not in on_grid]
+        if missing:
+            raise InputError(f"slow table: no channel {missing[0]!r} (expected the beam-current channels named)")
+        currents = {name: values for name, (_, values) in on_grid.items()}
     pairs, events, t_starts, ratios = transmission(
         matrix,
         reference_sum=ref.sum if ref.sum is not None and np.isfinite(ref.sum).any() else None,
@@ -2269,6 +2304,7 @@ def analyze_orbit(
         bucket_s=step_bucket_s,
         loss_threshold=loss_threshold,
         min_duration_s=min_loss_s,
+        currents=currents,
     )
     if not pairs:
         notes.append("no transmission: sum signals missing")
@@ -2320,6 +2356,7 @@ def analyze_orbit(
         "loss_threshold": loss_threshold,
         "min_loss_duration_s": min_loss_s,
         "min_sum_fraction": min_sum_fraction,
+        "current_channels": [str(c) for c in current_channels],
     }
     return OrbitReport(
         start=pd.Timestamp(int(times_ns[0]), tz="UTC"),
@@ -2390,6 +2427,7 @@ __all__ = [
     "alias_frequency",
     "analyze_orbit",
     "bpm_spectrum",
+    "bucket_grid",
     "bucket_means",
     "correlate_slow",
     "detect_steps",

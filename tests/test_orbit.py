@@ -630,3 +630,25 @@ def test_step_across_a_beam_off_gap_is_placed_at_the_first_pulse_after_it():
     (step,) = orbit.detect_steps(_times(n, 10.0)[keep], x[keep])
     assert step.time == START + pd.Timedelta("40min")
     assert step.size_m == pytest.approx(25 * UM, rel=0.2)
+
+
+def test_beam_current_channel_is_a_station_upstream_of_the_first_bpm():
+    """Exact case: the current monitor reads steady while every BPM sum drops 3 % for 10 min
+    (loss before BPM-01); the slow channel's own unit does not matter (normalised)."""
+    rng = np.random.default_rng(34)
+    n = 60 * 60 * 10
+    times = _times(n, 10.0)
+    t_s = np.arange(n) / 10.0
+    total = 1.0 + 0.002 * rng.standard_normal((n, 3))
+    total[(t_s >= 1800) & (t_s < 2400)] *= 0.97
+    x = rng.normal(0, 1 * UM, (n, 3))
+    ts = np.arange(0, 3600, 5.0)
+    slow = pd.DataFrame({"timestamp": START + pd.to_timedelta(ts, unit="s"), "channel": "I-GUN",
+                         "value": 2.5e-3 * (1 + 0.001 * rng.standard_normal(ts.size)), "unit": "A"})
+    report = orbit.analyze_orbit(_table(times, x, x.copy(), total), slow_df=slow, current_channels=["I-GUN"])
+    (event,) = report.loss_events
+    assert (event.upstream, event.downstream) == ("I-GUN", "BPM-01")
+    assert abs((event.start - START).total_seconds() - 1800) <= 10
+    assert event.size == pytest.approx(0.03, rel=0.05)
+    with pytest.raises(InputError, match="no channel 'I-XX'"):
+        orbit.analyze_orbit(_table(times, x, x.copy(), total), slow_df=slow, current_channels=["I-XX"])
