@@ -134,3 +134,14 @@ def test_dark_frame_in_a_subfolder_is_auxiliary(tmp_path):
     assert is_auxiliary(tmp_path / "darks" / "SCR-01_dark.png")
     assert [p.name for p in iter_inputs([tmp_path])] == ["a.png"]
     assert read_any(tmp_path / "a.png")[1].dark is not None
+
+
+def test_parquet_profile_is_detected_by_its_metadata(tmp_path):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.table({"x": [1.0, 2.0], "y": [0.0, 1.0]}).replace_schema_metadata({"plane": "x"})
+    pq.write_table(table, tmp_path / "p.parquet")
+    assert detect_kind(tmp_path / "p.parquet") == "profiles"
+    with pytest.raises(InputError, match=r"missing column 'position'"):
+        read_any(tmp_path / "p.parquet")
