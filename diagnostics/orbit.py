@@ -47,9 +47,11 @@ different timestamps are different pulses.
 
 from __future__ import annotations
 
+import contextlib
 import math
 import re
-from collections.abc import Mapping, Sequence
+import warnings
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -796,18 +798,12 @@ def reference_orbit(
     )
 
 
-class _quiet_nanmean:
+@contextlib.contextmanager
+def _quiet_nanmean() -> Iterator[None]:
     """Silence numpy's 'Mean of empty slice' for all-NaN columns (they stay NaN)."""
-
-    def __enter__(self) -> None:
-        import warnings
-
-        self._ctx = warnings.catch_warnings()
-        self._ctx.__enter__()
+    with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-
-    def __exit__(self, *exc: object) -> None:
-        self._ctx.__exit__(*exc)
+        yield
 
 
 def _align_reference(reference: ReferenceOrbit, bpms: Sequence[str]) -> ReferenceOrbit:
@@ -822,9 +818,9 @@ def _align_reference(reference: ReferenceOrbit, bpms: Sequence[str]) -> Referenc
         values = np.asarray(values, dtype=np.float64)
         return np.array([values[where[b]] if b in where else np.nan for b in bpms])
 
-    return ReferenceOrbit(
-        tuple(bpms), pick(reference.x_m), pick(reference.y_m), pick(reference.sum), reference.start, reference.end
-    )
+    x, y = pick(reference.x_m), pick(reference.y_m)
+    assert x is not None and y is not None
+    return ReferenceOrbit(tuple(bpms), x, y, pick(reference.sum), reference.start, reference.end)
 
 
 def drift_matrix(
@@ -1768,19 +1764,19 @@ def correlate_slow(
     for col in range(x.shape[1]):
         cs = _shift(c, int(best_lag[col]))
         good = np.isfinite(x[:, col]) & np.isfinite(cs)
-        n = int(good.sum())
-        if n < minimum or not np.isfinite(best_r[col]):
-            out.append((math.nan, math.nan, math.nan, math.nan, n))
+        n_pairs = int(good.sum())
+        if n_pairs < minimum or not np.isfinite(best_r[col]):
+            out.append((math.nan, math.nan, math.nan, math.nan, n_pairs))
             continue
-        columns = [np.ones(n), cs[good]] + ([t[good] - t[good].mean()] if trend else [])
+        columns = [np.ones(n_pairs), cs[good]] + ([t[good] - t[good].mean()] if trend else [])
         design = np.column_stack(columns)
         coef, *_ = np.linalg.lstsq(design, x[good, col], rcond=None)
         resid = x[good, col] - design @ coef
-        dof = n - design.shape[1]
+        dof = n_pairs - design.shape[1]
         cov = np.linalg.pinv(design.T @ design) * float(resid @ resid) / dof
         rho = min(max(_lag1_autocorrelation(resid), 0.0), 0.99)
         err = math.sqrt(cov[1, 1]) * math.sqrt((1 + rho) / (1 - rho))
-        out.append((float(coef[1]), err, float(best_r[col]), float(best_lag[col] * bucket_s), n))
+        out.append((float(coef[1]), err, float(best_r[col]), float(best_lag[col] * bucket_s), n_pairs))
     return out
 
 
@@ -2310,8 +2306,9 @@ def analyze_orbit(
         notes.append("no transmission: sum signals missing")
 
     duration_s = (times_ns[-1] - times_ns[0]) / _NS_PER_S
-    ref_span_s = (_as_ns(ref.end) - _as_ns(ref.start)) / _NS_PER_S if ref.start is not None else math.nan
-    if isinstance(ref_span_s, float) and ref_span_s < reference_minutes * 60 * (1 - 1e-9):
+    ref_lo, ref_hi = _as_ns(ref.start), _as_ns(ref.end)
+    ref_span_s = (ref_hi - ref_lo) / _NS_PER_S if ref_lo is not None and ref_hi is not None else math.nan
+    if ref_span_s < reference_minutes * 60 * (1 - 1e-9):
         notes.append(f"reference window shortened to {ref_span_s / 60:.3g} min (record of {duration_s / 60:.3g} min)")
 
     trends = None

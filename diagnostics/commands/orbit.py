@@ -66,6 +66,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:
                    metavar="N", help="reference orbit: the first N minutes (default %(default)g)")
     p.add_argument("--jitter-method", choices=JITTER_METHODS, default=JITTER_METHODS[0],
                    help="how slow drift is removed before the jitter rms (default %(default)s)")
+    p.add_argument("--current-channel", action="append", default=[], metavar="NAME", dest="current_channels",
+                   help="slow channel measuring the beam current upstream of the first BPM (repeat for several)")
     p.add_argument("--loss-threshold", type=_positive_float, default=0.01, metavar="F",
                    help="fractional transmission drop counted as a loss (default %(default)g)")
     p.set_defaults(func=run)
@@ -90,6 +92,7 @@ def _options(args: argparse.Namespace) -> dict[str, Any]:
         "reference_minutes": args.reference_minutes,
         "jitter_method": args.jitter_method,
         "loss_threshold": args.loss_threshold,
+        "current_channels": tuple(args.current_channels),
         "keep_trends": False,
     }
 
