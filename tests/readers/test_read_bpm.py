@@ -235,3 +235,20 @@ def test_order_rules_match_a_pandas_groupby_reference(tmp_path_factory, rows):
 def test_empty_time_in_an_epoch_column_is_named_empty(write):
     with pytest.raises(InputError, match=r"line 3: column 'timestamp' is empty"):
         read_bpm(write("b.csv", HEADER + "1764482400,BPM-01,1,2\n,BPM-01,1,2\n"))
+
+
+@pytest.mark.parametrize(
+    ("text", "iso"),
+    [("2026-11-30 06:00:00Z", "2026-11-30T06:00:00Z"), ("2026-11-30T06:00:00+05", "2026-11-30T01:00:00Z"),
+     ("2026-11-30T06:00:00.5-0130", "2026-11-30T07:30:00.5Z")],
+)
+def test_accepted_time_spellings(write, text, iso):
+    """Documented spellings; the expected instants are plain offset arithmetic."""
+    df = read_bpm(write("b.csv", HEADER + f"{text},BPM-01,1,2\n"))
+    assert df["timestamp"].iloc[0] == pd.Timestamp(iso)
+
+
+@pytest.mark.parametrize("text", ["20261130T060000Z", "2026-W48-1T06:00:00Z", "2026-11-30T06:00:00,5Z"])
+def test_refused_time_spellings(write, text):
+    with pytest.raises(InputError, match=r"line 2: column 'timestamp' has .* \(expected an ISO 8601 time with zone"):
+        read_bpm(write("b.csv", HEADER + f"{text},BPM-01,1,2\n"))
