@@ -155,6 +155,8 @@ def test_broken_profile_files_name_file_line_and_expectation(broken, name, patte
          r"'steep' is not a number"),
         ("# plane: x\nposition,signal\n1,2\n", r"header 'timestamp' missing"),
         ("# plane: x\n# timestamp: yesterday\nposition,signal\n1,2\n", r"'yesterday' is not an ISO 8601 time"),
+        ("# plane: x\n# timestamp: 20261130T081500Z\nposition,signal\n1,2\n",
+         r"'20261130T081500Z' is not an ISO 8601 time"),  # the compact form, refused as in tables
         ("# plane: x\n# plane: y\n# timestamp: 2026-11-30T08:15:00Z\nposition,signal\n1,2\n",
          r"line 2: header key 'plane' given twice"),
         (HEAD + "position,signal\n", r"no data rows"),
