@@ -48,6 +48,7 @@ different timestamps are different pulses.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import math
 import re
 import warnings
@@ -122,7 +123,9 @@ class StepEvent:
     """Steps of several BPM planes at the same time (within one step bucket).
 
     ``time`` is the earliest member's; ``members`` are ``(bpm, plane, size_m)``
-    in line order.  ``message`` reads the pattern as METHODS.md section 5.3 does:
+    in line order; ``slow_changes`` are ``(channel, change, unit)`` of slow
+    channels (magnet currents, ...) that stepped at the same time (see
+    :func:`slow_steps_at`), which may explain the step.  ``message`` reads the pattern as METHODS.md section 5.3 does:
     a step shared by many BPMs points to a kick or a magnet change, a step on a
     single BPM to its electronics or mechanics.
     """
@@ -130,6 +133,7 @@ class StepEvent:
     time: pd.Timestamp
     members: tuple[tuple[str, str, float], ...]
     message: str = ""
+    slow_changes: tuple[tuple[str, float, str], ...] = ()
 
     @property
     def bpms(self) -> tuple[str, ...]:
@@ -1964,6 +1968,50 @@ def group_steps(
     return tuple(events)
 
 
+def slow_steps_at(
+    slow_df: pd.DataFrame, time: pd.Timestamp, *, window_s: float = 120.0, threshold: float = 6.0
+) -> tuple[tuple[str, float, str], ...]:
+    """Slow channels that changed suddenly at ``time``: ``(channel, change, unit)``.
+
+    For each channel, the mean of the readings in ``window_s`` after ``time``
+    minus the mean of those before, against its standard error from the
+    channel's reading noise (MAD of first differences over ten windows either
+    side, divided by sqrt 2).  Channels beyond ``threshold`` standard errors are
+    listed, largest first.  Slow drifts (temperatures) move far less than that
+    in two minutes.
+    """
+    if slow_df is None or slow_df.empty:
+        return ()
+    t0 = _as_ns(time)
+    assert t0 is not None
+    t_ns = _timestamps_ns(slow_df["timestamp"], "slow table")
+    near = np.abs(t_ns - t0) <= 10 * window_s * _NS_PER_S
+    if not near.any():
+        return ()
+    sub = slow_df[near]
+    t_sub = t_ns[near]
+    out = []
+    for name, idx in sub.groupby(sub["channel"].astype(str), sort=True).indices.items():
+        tc = t_sub[idx]
+        order = np.argsort(tc, kind="stable")
+        tc = tc[order]
+        vc = sub["value"].to_numpy(dtype=np.float64, na_value=np.nan)[idx][order]
+        before = vc[(tc >= t0 - window_s * _NS_PER_S) & (tc < t0)]
+        after = vc[(tc >= t0) & (tc <= t0 + window_s * _NS_PER_S)]
+        before, after = before[np.isfinite(before)], after[np.isfinite(after)]
+        if before.size < 2 or after.size < 2:
+            continue
+        noise = robust_sigma(np.diff(vc[np.isfinite(vc)])) / math.sqrt(2.0)
+        change = float(after.mean() - before.mean())
+        se = noise * math.sqrt(1.0 / before.size + 1.0 / after.size)
+        # a quantised channel can have zero noise: then any change counts
+        if change != 0.0 and (se == 0.0 or abs(change) > threshold * se):
+            unit = str(sub["unit"].iloc[idx[0]]) if "unit" in sub.columns else ""
+            out.append((str(name), change, unit, abs(change) / se if se > 0 else math.inf))
+    out.sort(key=lambda item: -item[3])
+    return tuple((name, change, unit) for name, change, unit, _ in out)
+
+
 def three_bpm_resolution(upstream: np.ndarray, middle: np.ndarray, downstream: np.ndarray) -> tuple[float, float]:
     """Resolution of the middle BPM of three equally spaced in a field-free drift.
 
@@ -2317,6 +2365,14 @@ def analyze_orbit(
     if ref_span_s < reference_minutes * 60 * (1 - 1e-9):
         notes.append(f"reference window shortened to {ref_span_s / 60:.3g} min (record of {duration_s / 60:.3g} min)")
 
+    step_events = group_steps(
+        [(sm.bpm, sm.plane, st) for sm in summaries for st in sm.steps], tolerance_s=step_bucket_s, bpms=matrix.bpms
+    )
+    if slow_df is not None and not slow_df.empty and step_events:
+        step_events = tuple(
+            dataclasses.replace(event, slow_changes=slow_steps_at(slow_df, event.time)) for event in step_events
+        )
+
     trends = None
     if keep_trends:
         if t_starts.size and ratios.shape[1]:
@@ -2379,11 +2435,7 @@ def analyze_orbit(
         violations=tuple(violations),
         known_line_aliases=aliases,
         trends=trends,
-        step_events=group_steps(
-            [(sm.bpm, sm.plane, st) for sm in summaries for st in sm.steps],
-            tolerance_s=step_bucket_s,
-            bpms=matrix.bpms,
-        ),
+        step_events=step_events,
         options=options,
         flags=merge_flags(report_flags),
         message="; ".join(notes),
@@ -2447,6 +2499,7 @@ __all__ = [
     "reference_orbit",
     "sampling_rate_Hz",
     "slow_on_buckets",
+    "slow_steps_at",
     "spectrum",
     "three_bpm_resolution",
     "transmission",
@@ -2499,7 +2552,13 @@ def orbit_record(report: OrbitReport, *, n_mode_vectors: int = 3) -> dict[str, o
         "bpms": bpms,
         "steps": [{"bpm": b, "plane": p, **jsonable(s)} for b, p, s in report.steps],
         "step_events": [
-            {"time": jsonable(e.time), "bpms": list(e.bpms), "members": jsonable(e.members), "message": e.message}
+            {
+                "time": jsonable(e.time),
+                "bpms": list(e.bpms),
+                "members": jsonable(e.members),
+                "slow_changes": jsonable(e.slow_changes),
+                "message": e.message,
+            }
             for e in report.step_events
         ],
         "modes": modes,

@@ -558,27 +558,42 @@ def _demo_tables(start_s: float, hours: float, rate_Hz: float, seed: int = 2):
     )
     ts = np.arange(start_s, start_s + hours * 3600, 10.0)
     temps = demo.temperatures_degC(ts, rng)
-    slow = pd.DataFrame(
-        {
-            "timestamp": np.repeat(START + pd.to_timedelta(ts, unit="s"), 4),
-            "channel": np.tile(list(demo.TEMPERATURE_SENSORS), ts.size),
-            "value": temps.ravel(),
-            "unit": "degC",
-        }
+    slow_times = START + pd.to_timedelta(ts, unit="s")
+    slow = pd.concat(
+        [
+            pd.DataFrame(
+                {
+                    "timestamp": np.repeat(slow_times, 4),
+                    "channel": np.tile(list(demo.TEMPERATURE_SENSORS), ts.size),
+                    "value": temps.ravel(),
+                    "unit": "degC",
+                }
+            ),
+            pd.DataFrame(
+                {"timestamp": slow_times, "channel": demo.CORRECTOR, "value": demo.corrector_current_A(ts, rng), "unit": "A"}
+            ),
+        ],
+        ignore_index=True,
     )
     return demo, bpm, slow
 
 
 def test_demo_events_recovered_between_10_and_12():
     """Demo scenario, 10:00-12:00 at 10 Hz: the 35 um corrector step at 10:42:00 on BPM-09
-    onward (x only), the 1.8 Hz line of 3 and 4 um on BPM-05/06, and the 2 % loss between
-    BPM-15 and BPM-16 from 11:20 to 11:35; nothing else."""
-    demo, bpm, _ = _demo_tables(4 * 3600, 2.0, 10.0)
-    report = orbit.analyze_orbit(bpm)
+    onward (x only) with the HC-08 corrector change that caused it, the 1.8 Hz line of 3 and
+    4 um on BPM-05/06, and the 2 % loss between BPM-15 and BPM-16 from 11:20 to 11:35;
+    nothing else."""
+    demo, bpm, slow = _demo_tables(4 * 3600, 2.0, 10.0)
+    report = orbit.analyze_orbit(bpm, slow_df=slow)
     (event,) = report.step_events
     assert event.time == pd.Timestamp("2026-11-30T10:42:00Z")
     assert event.bpms == demo.BPMS[8:]
     assert {plane for _, plane, _ in event.members} == {"x"}
+    # the corrector current stepped at the same time (0.850 -> 0.900 A); temperatures did not
+    before, after = demo.STEP["corrector_current_A"]
+    assert [name for name, _, _ in event.slow_changes] == [demo.CORRECTOR]
+    assert event.slow_changes[0][1] == pytest.approx(after - before, rel=0.05)
+    assert event.slow_changes[0][2] == "A"
     assert report.summary("BPM-09", "x").steps[0].size_m == pytest.approx(35e-6, rel=0.2)
     for name, amp in demo.VIBRATION["amplitude_x_m"].items():
         s = report.summary(name, "x")

@@ -189,6 +189,12 @@ def summary_lines(source: str, report: Any) -> list[str]:
             f"  step {bpm} {plane} at {step.time.isoformat().replace('+00:00', 'Z')}: "
             f"{fmt(step.size_m, u)} +- {fmt(step.size_err_m, u, 2)} um"
         )
+    for group in report.step_events:
+        changes = "; ".join(f"{name} changed by {fmt(change, 1)} {unit}" for name, change, unit in group.slow_changes)
+        lines.append(
+            f"  step event at {group.time.isoformat().replace('+00:00', 'Z')}: {group.message}"
+            + (f" ({changes})" if changes else "")
+        )
     for event in report.loss_events:
         lines.append(
             f"  loss {event.upstream} -> {event.downstream} {event.start.isoformat().replace('+00:00', 'Z')} .. "
