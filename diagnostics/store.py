@@ -1941,23 +1941,34 @@ class Store:
                 "SELECT DISTINCT kind FROM files WHERE live = 1 ORDER BY kind")]
         date_list = _as_list(dates, "dates")
         done: list[CompactedPartition] = []
-        for kind in kind_list:
-            sql = ("SELECT path, date, rows, bytes, tmin_ns, schema FROM files WHERE kind = ?"
-                   " AND live = 1 AND bytes < ?")
-            params: list[Any] = [kind, int(target_bytes)]
-            if date_list is not None:
-                sql += " AND date IN (" + ",".join("?" for _ in date_list) + ")"
-                params += date_list
-            by_date: dict[str, list[sqlite3.Row]] = {}
-            for r in self._catalog.query(sql + " ORDER BY date, tmin_ns, path", params):
-                by_date.setdefault(r["date"], []).append(r)
-            for date, rows in by_date.items():
-                for batch in _batches(rows, target_bytes):
-                    if len(batch) >= 2:
-                        done.append(self._merge(kind, date, batch))
-        removed = self._remove_retired()
-        stale = self._remove_stale()
+        with _exclusive(self.root / ".compact.lock"):  # one compaction at a time
+            for kind in kind_list:
+                done += self._compact_kind(kind, date_list, target_bytes)
+            removed = self._remove_retired()
+            stale = self._remove_stale()
         return CompactSummary(tuple(done), removed, stale)
+
+    def _compact_kind(self, kind: str, date_list: list[str] | None,
+                      target_bytes: int) -> list[CompactedPartition]:
+        done: list[CompactedPartition] = []
+        sql = ("SELECT path, date, rows, bytes, tmin_ns, schema FROM files WHERE kind = ?"
+               " AND live = 1 AND bytes < ?")
+        params: list[Any] = [kind, int(target_bytes)]
+        if date_list is not None:
+            sql += " AND date IN (" + ",".join("?" for _ in date_list) + ")"
+            params += date_list
+        by_date: dict[str, list[sqlite3.Row]] = {}
+        for r in self._catalog.query(sql + " ORDER BY date, tmin_ns, path", params):
+            by_date.setdefault(r["date"], []).append(r)
+        for date, rows in by_date.items():
+            for batch in _batches(rows, target_bytes):
+                if len(batch) < 2:
+                    continue
+                try:
+                    done.append(self._merge(kind, date, batch))
+                except StoreError:  # column types that do not unify: leave the files be
+                    continue
+        return done
 
     def _merge(self, kind: str, date: str, rows: Sequence[sqlite3.Row]) -> CompactedPartition:
         inputs = [r["path"] for r in rows]
@@ -2065,6 +2076,19 @@ _FRAME_WRITE: dict[str, Any] = {
     "row_group_size": FRAMES_PER_ROW_GROUP,
     "use_dictionary": ["device", "dtype", "source", "sha256", "scan", "scan_version"],
 }
+
+
+@contextlib.contextmanager
+def _exclusive(lock_path: Path):
+    """An exclusive advisory lock on ``lock_path`` (``fcntl.flock``; waits for it)."""
+    import fcntl
+
+    with open(lock_path, "a+b") as fh:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
 
 
 def _conform(table: pa.Table, schema: pa.Schema) -> pa.Table:

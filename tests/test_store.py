@@ -463,3 +463,26 @@ def test_crash_between_parquet_and_catalog_is_repaired_by_a_rerun(store, monkeyp
     assert again == orphan and again.read_bytes() == orphan_bytes
     assert len(store.read_bpm()) == 60
     assert list((store.root / "bpm").rglob("*.parquet")) == [again]
+
+
+def test_two_compactions_at_once_leave_one_copy_of_each_row(store):
+    for i in range(8):
+        store.write_bpm(bpm_frame(20, start=T0 + pd.Timedelta(minutes=i), seed=i),
+                        sha256=f"{i:02x}" * 32, source=f"f{i}.csv")
+    results, errors = [], []
+
+    def run():
+        try:
+            results.append(store.compact())
+        except Exception as exc:  # noqa: BLE001 - asserted below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=run) for _ in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert errors == []
+    assert sorted(len(r.partitions) for r in results) == [0, 2]  # the second found nothing to do
+    assert len(store.read_bpm()) == 8 * 60
+    assert len(list((store.root / "bpm").rglob("*.parquet"))) == 1
