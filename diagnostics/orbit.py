@@ -939,7 +939,7 @@ def _window_step_statistic(
     return delta, se_unit, ok
 
 
-def _refine_step_time(t_s: np.ndarray, values: np.ndarray) -> int:
+def _refine_step_time(values: np.ndarray) -> int:
     """Index of the first sample after the split that best separates two means.
 
     Maximises ``sqrt(n1 n2 / n) |mean2 - mean1|`` (the two-sample statistic).
@@ -1040,7 +1040,7 @@ def _detect_steps_columns(
             before_ns, after_ns = starts[kept[k - 1]], starts[kept[k]]
             if after_ns - before_ns == bucket_ns:
                 a, b = np.searchsorted(times_ns, [before_ns, after_ns + bucket_ns])
-                i = a + _refine_step_time(times_ns[a:b], values[a:b, col])
+                i = a + _refine_step_time(values[a:b, col])
             else:
                 # a gap in the data between the two buckets: the step shows at
                 # the first pulse after the gap

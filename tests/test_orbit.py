@@ -667,3 +667,27 @@ def test_beam_current_channel_is_a_station_upstream_of_the_first_bpm():
     assert event.size == pytest.approx(0.03, rel=0.05)
     with pytest.raises(InputError, match="no channel 'I-XX'"):
         orbit.analyze_orbit(_table(times, x, x.copy(), total), slow_df=slow, current_channels=["I-XX"])
+
+
+def test_report_is_invariant_to_an_offset_and_scales_with_the_positions():
+    """Invariances: adding a constant orbit changes only mean and reference; doubling the
+    positions doubles every length (drift, rate, jitter, step size, line amplitude)."""
+    rng = np.random.default_rng(35)
+    n = 40 * 60 * 10
+    t_s = np.arange(n) / 10.0
+    x = rng.normal(0, 2 * UM, (n, 3)) + 5 * UM * t_s[:, None] / 3600
+    x[t_s >= 1500, 1] += 12 * UM
+    x[:, 2] += 3 * UM * np.sin(2 * np.pi * 1.3 * t_s)
+    times = _times(n, 10.0)
+    base = orbit.analyze_orbit(_table(times, x, x.copy()))
+    shifted = orbit.analyze_orbit(_table(times, x + 3e-4, x.copy()))
+    doubled = orbit.analyze_orbit(_table(times, 2 * x, x.copy()))
+    for a, b, c in zip(base.summaries[:3], shifted.summaries[:3], doubled.summaries[:3], strict=True):
+        assert b.mean_m == pytest.approx(a.mean_m + 3e-4, rel=1e-9)
+        for name in ("drift_m", "drift_rate_m_per_h", "jitter_rms_m", "peak_amplitude_m"):
+            va, vb, vc = getattr(a, name), getattr(b, name), getattr(c, name)
+            if math.isfinite(va):
+                assert vb == pytest.approx(va, rel=1e-6, abs=1e-12)
+                assert vc == pytest.approx(2 * va, rel=1e-6)
+        assert [s.time for s in a.steps] == [s.time for s in b.steps] == [s.time for s in c.steps]
+        assert [2 * s.size_m for s in a.steps] == pytest.approx([s.size_m for s in c.steps], rel=1e-6)
