@@ -691,3 +691,26 @@ def test_report_is_invariant_to_an_offset_and_scales_with_the_positions():
                 assert vc == pytest.approx(2 * va, rel=1e-6)
         assert [s.time for s in a.steps] == [s.time for s in b.steps] == [s.time for s in c.steps]
         assert [2 * s.size_m for s in a.steps] == pytest.approx([s.size_m for s in c.steps], rel=1e-6)
+
+
+@pytest.mark.parametrize("method", orbit.JITTER_METHODS)
+def test_missing_readings_and_a_dead_bpm_do_not_break_the_report(method):
+    """1 % of readings missing at random, one BPM without y readings, beam off for 5 min:
+    the report is complete, the dead plane is flagged, numbers stay finite elsewhere."""
+    rng = np.random.default_rng(36)
+    n = 40 * 60 * 10
+    t_s = np.arange(n) / 10.0
+    x = rng.normal(0, 2 * UM, (n, 4))
+    y = rng.normal(0, 2 * UM, (n, 4))
+    y[:, 3] = np.nan
+    df = _table(_times(n, 10.0), x, y)
+    df = df[~((np.repeat(t_s, 4) >= 1200) & (np.repeat(t_s, 4) < 1500))]
+    df = df.drop(index=rng.choice(df.index.to_numpy(), len(df) // 100, replace=False))
+    report = orbit.analyze_orbit(df, jitter_method=method)
+    dead = report.summary("BPM-04", "y")
+    assert "too_few_points" in dead.flags and math.isnan(dead.jitter_rms_m)
+    for s in report.summaries:
+        if (s.bpm, s.plane) != ("BPM-04", "y"):
+            assert s.jitter_rms_m == pytest.approx(2 * UM, rel=0.15)
+            assert s.steps == ()
+    assert report.modes[1].bpms == ("BPM-01", "BPM-02", "BPM-03")
