@@ -336,7 +336,7 @@ class Catalog:
         if t_max_ns is not None:
             sql += " AND (tmin_ns IS NULL OR tmin_ns < ?)"
             params.append(t_max_ns)
-        return self.query(sql + " ORDER BY date, path", params)
+        return self.query(sql + " ORDER BY tmin_ns, path", params)
 
 
 def schema_blob(schema: pa.Schema) -> bytes:

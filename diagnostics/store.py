@@ -446,6 +446,20 @@ def _sorted_by_time(table: pa.Table) -> pa.Table:
     return table.sort_by([("timestamp", "ascending")])
 
 
+def _is_sorted(table: pa.Table, time_key: str, name_key: str) -> bool:
+    """Whether rows are sorted by (time, name), checked on neighbours without sorting."""
+    ts = table.column(time_key).cast(pa.int64()).to_numpy()
+    step = np.diff(ts)
+    if (step < 0).any():
+        return False
+    ties = np.flatnonzero(step == 0)
+    if ties.size == 0:
+        return True
+    names = table.column(name_key)
+    before, after = names.take(pa.array(ties)), names.take(pa.array(ties + 1))
+    return bool(pc.all(pc.less_equal(before, after)).as_py())
+
+
 def _split_by_date(table: pa.Table) -> list[tuple[str, pa.Table]]:
     """(date, rows) pairs of a table sorted by time, split at UTC midnights."""
     if table.num_rows == 0:
@@ -1456,7 +1470,7 @@ class Store:
 
     @staticmethod
     def _readings_frame(table: pa.Table, keys: list[str]) -> pd.DataFrame:
-        if table.num_rows > 1:
+        if table.num_rows > 1 and not _is_sorted(table, keys[0], keys[1]):
             table = table.sort_by([(k, "ascending") for k in keys])
         df = table.to_pandas()
         for name in df.columns:

@@ -486,3 +486,14 @@ def test_two_compactions_at_once_leave_one_copy_of_each_row(store):
     assert sorted(len(r.partitions) for r in results) == [0, 2]  # the second found nothing to do
     assert len(store.read_bpm()) == 8 * 60
     assert len(list((store.root / "bpm").rglob("*.parquet"))) == 1
+
+
+def test_read_bpm_is_sorted_whatever_the_write_order(store):
+    late = bpm_frame(30, start=T0 + pd.Timedelta("1h"), bpms=("BPM-09", "BPM-02"), seed=1)
+    early = bpm_frame(30, start=T0, bpms=("BPM-09", "BPM-02"), seed=2)
+    store.write_bpm(late, sha256="0" * 63 + "1", source="late.csv")
+    store.write_bpm(early, sha256="f" * 63 + "1", source="early.csv")
+    got = store.read_bpm()
+    expected = pd.concat([early, late]).sort_values(["timestamp", "bpm"]).reset_index(drop=True)
+    pd.testing.assert_frame_equal(got, expected, check_dtype=False)
+    assert got["bpm"].iloc[:2].tolist() == ["BPM-02", "BPM-09"]
