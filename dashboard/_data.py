@@ -393,6 +393,12 @@ class OrbitJobs:
                 self._jobs.popitem(last=False)
         return job
 
+    def get(self, root: str, stamp_: str, window: tuple[str, str]) -> Future | None:
+        """The job of exactly this request, if there is a live one."""
+        with self._lock:
+            job = self._jobs.get((root, stamp_, window))
+        return None if job is None or job.cancelled() else job
+
     def stand_in(self, root: str, window: tuple[str, str]) -> tuple[tuple[str, str], Any] | None:
         """The newest finished report of ``root`` whose window covers most of ``window``."""
         with self._lock:
@@ -410,16 +416,21 @@ def orbit_jobs() -> OrbitJobs:
     return OrbitJobs()
 
 
-def orbit_report(root: str, stamp_: str, window: tuple[str, str], *, wait_s: float = 0.0) -> OrbitAnswer:
+def orbit_report(root: str, stamp_: str, window: tuple[str, str], *, wait_s: float = 0.0,
+                 start: bool = True) -> OrbitAnswer:
     """The window's :class:`~diagnostics.orbit.OrbitReport`, as far as it is ready.
 
     The analysis runs on a worker thread; this waits at most ``wait_s``.  A
     finished analysis gives ``OrbitAnswer(True, report)`` (``report`` is
     ``None`` when the window holds no BPM readings); an analysis that raised
-    re-raises here.
+    re-raises here.  With ``start=False`` an analysis not yet asked for is not
+    started (a page does that after its first render, so the two do not compete).
     """
     jobs = orbit_jobs()
-    job = jobs.submit(root, stamp_, window)
+    job = jobs.submit(root, stamp_, window) if start else jobs.get(root, stamp_, window)
+    if job is None:  # not asked for yet, and told not to start it
+        stand_in = jobs.stand_in(root, window)
+        return OrbitAnswer(False) if stand_in is None else OrbitAnswer(False, stand_in[1], True, stand_in[0])
     try:
         return OrbitAnswer(True, job.result(timeout=max(wait_s, 0.001)), window=window)
     except (FuturesTimeout, CancelledError):

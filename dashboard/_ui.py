@@ -8,6 +8,7 @@ the display column.
 
 from __future__ import annotations
 
+import html
 import math
 from collections.abc import Iterable, Sequence
 from typing import Any
@@ -75,6 +76,24 @@ def empty_state(what: str) -> None:
 def unavailable(exc: Exception) -> None:
     """A library piece or the store is missing: say so instead of a traceback."""
     st.warning(f"{exc}", icon=":material/construction:")
+
+
+def guard(draw, *args, what: str = "This panel", **kwargs):
+    """Draw one panel; if it fails, say so in one line and keep the rest of the page.
+
+    A store that cannot answer one query (or a library piece that is missing)
+    then costs one panel, not the page.  Streamlit's own rerun/stop signals are
+    ``BaseException``s and pass through.
+    """
+    try:
+        return draw(*args, **kwargs)
+    except _data.Unavailable as exc:
+        unavailable(exc)
+    except Exception as exc:  # noqa: BLE001 - shown to the operator, the page goes on
+        text = " ".join(str(exc).split())
+        st.error(f"{what} could not be drawn: {type(exc).__name__}: {text[:300]}",
+                 icon=":material/error:")
+    return None
 
 
 def page_store() -> tuple[str, str] | None:
@@ -317,10 +336,17 @@ def plot(fig: go.Figure, *, key: str | None = None) -> None:
 
 def big_number(label: str, value: str, *, help: str | None = None, sub: str | None = None,
                delta: str | None = None, delta_color: str = "off") -> None:
-    """A headline number: ``st.metric`` with a bordered card."""
-    st.metric(label, value, delta=delta, delta_color=delta_color, help=help, border=True)
-    if sub:
-        st.caption(sub)
+    """A headline number in a bordered card: ``st.metric`` with a one-line note under it."""
+    with st.container(border=True):
+        st.metric(label, value, delta=delta, delta_color=delta_color, help=help)
+        st.caption(sub or "\u00a0")
+
+
+def small_fact(label: str, value: str, *, help: str | None = None) -> None:
+    """A secondary fact: smaller than a headline number, never cut off."""
+    st.markdown(f"<div style='font-size:0.8rem;opacity:0.7'>{html.escape(label)}</div>"
+                f"<div style='font-size:1.05rem;font-weight:600'>{html.escape(value)}</div>",
+                unsafe_allow_html=True, help=help)
 
 
 #: How often a page waiting for the orbit analysis looks again, seconds.

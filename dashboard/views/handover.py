@@ -61,4 +61,4 @@ def main() -> None:
     st.iframe(f"data:text/html;charset=utf-8;base64,{encoded}", height=PREVIEW_HEIGHT)
 
 
-main()
+_ui.guard(main, what="This page")

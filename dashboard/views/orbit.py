@@ -262,4 +262,4 @@ def main() -> None:
                                      "jitter rms (µm)", "peak line (Hz)")})
 
 
-main()
+_ui.guard(main, what="This page")

@@ -246,4 +246,4 @@ def main() -> None:
         wire_scans(root, stamp, window)
 
 
-main()
+_ui.guard(main, what="This page")

@@ -229,4 +229,4 @@ def main() -> None:
                        mime="text/csv", key="dl_csv")
 
 
-main()
+_ui.guard(main, what="This page")

@@ -73,7 +73,7 @@ def headline(root: str, waiting: bool = False) -> None:
                 sub=f"{row.get('scan_name', '')} · {_ui.fmt_time(row.get('timestamp'))}"
                     + (f" · ⚠ {', '.join(flags)}" if flags else ""),
             )
-    answer = _data.orbit_report(root, stamp, window.key)
+    answer = _data.orbit_report(root, stamp, window.key, start=not waiting)
     if waiting and answer.ready:
         st.rerun()  # the analysis has arrived: redraw the whole page with it
     report = answer.report
@@ -108,29 +108,32 @@ def headline(root: str, waiting: bool = False) -> None:
                            help="Intervals in which a BPM plane exceeded the drift or jitter limit.",
                            sub=f"{len(report.out_of_limit_bpms)} BPMs · {losses} beam-loss event"
                                f"{'' if losses == 1 else 's'}{stale}")
-    status(root, stamp)
+    _ui.guard(status, root, stamp, what="The data status")
 
 
 def status(root: str, stamp: str) -> None:
-    """Last data per source, the watch service and quarantined inputs (second row)."""
+    """Last data per source, the watch service and quarantined inputs (second row, smaller)."""
     seen = _data.last_seen(root, stamp)
     cols = st.columns(len(SOURCES) + 2)
     for col, (kind, label) in zip(cols, SOURCES.items(), strict=False):
         ts = seen.get(kind)
-        col.metric(f"Last: {label}", _ui.fmt_age(ts) if ts is not None else "never",
-                   help=f"Newest {kind} timestamp in the store: {_ui.fmt_time(ts)}")
+        with col:
+            _ui.small_fact(f"Last: {label}", _ui.fmt_time(ts)[:16] if ts is not None else "never",
+                           help=f"Newest {kind} timestamp in the store, UTC ({_ui.fmt_age(ts)}).")
     beat = _data.heartbeat(root)
-    if beat is None:
-        cols[-2].metric("Watch service", "not running", help="No heartbeat file from `beamdiag watch`.")
-    else:
-        fresh = _data.heartbeat_is_fresh(beat)
-        state = beat.get("state", "?")
-        cols[-2].metric("Watch service", f"{state}" if fresh else f"{state} (stale)",
-                        help=(f"Heartbeat {_ui.fmt_time(_data.heartbeat_time(beat))}; "
-                              f"pending {beat.get('pending')}, lag {beat.get('lag_s')} s, "
-                              f"stored {beat.get('stored')}, quarantined {beat.get('quarantined')}."))
-    cols[-1].metric("Quarantined inputs", f"{_data.quarantine_count(root, stamp)}",
-                    help="Input files the store rejected (see `beamdiag ingest` output).")
+    with cols[-2]:
+        if beat is None:
+            _ui.small_fact("Watch service", "not running", help="No heartbeat file from `beamdiag watch`.")
+        else:
+            fresh = _data.heartbeat_is_fresh(beat)
+            state = str(beat.get("state", "?"))
+            _ui.small_fact("Watch service", state if fresh else f"{state} (stale)",
+                           help=(f"Heartbeat {_ui.fmt_time(_data.heartbeat_time(beat))}; "
+                                 f"pending {beat.get('pending')}, lag {beat.get('lag_s')} s, "
+                                 f"stored {beat.get('stored')}, quarantined {beat.get('quarantined')}."))
+    with cols[-1]:
+        _ui.small_fact("Quarantined inputs", f"{_data.quarantine_count(root, stamp)}",
+                       help="Input files the store rejected (see `beamdiag ingest` output).")
 
 
 def events_of(root: str, stamp: str, window: _data.Window, report) -> pd.DataFrame:
@@ -158,18 +161,18 @@ def trends(root: str) -> None:
     window = _ui.current_window(root, stamp)
     if window is None:
         return
-    report = _data.orbit_report(root, stamp, window.key).report
-    events = events_of(root, stamp, window, report)
+    report = _data.orbit_report(root, stamp, window.key, start=False).report
+    events = _ui.guard(events_of, root, stamp, window, report, what="The event list")
     left, right = st.columns(2)
     with left:
-        beam_sizes(root, stamp, window, events)
+        _ui.guard(beam_sizes, root, stamp, window, events, what="Beam sizes")
     with right:
-        emittance_trend(root, stamp, window, events)
+        _ui.guard(emittance_trend, root, stamp, window, events, what="Emittance")
     left, right = st.columns(2)
     with left:
-        orbit_drift(root, stamp, window, report, events)
+        _ui.guard(orbit_drift, root, stamp, window, report, events, what="Orbit drift")
     with right:
-        temperatures(root, stamp, window, events)
+        _ui.guard(temperatures, root, stamp, window, events, what="Temperatures")
 
 
 def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
@@ -185,7 +188,12 @@ def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame
                              visible=True, thickness=1),
                 mode="markers+lines", name=f"{device} {plane}", marker=dict(size=6),
                 hovertemplate="%{y:.1f} µm<extra>" + f"{device} {plane}</extra>"))
-    frames = _data.results(root, stamp, "frames", window.key)
+    try:
+        frames = _data.results(root, stamp, "frames", window.key)
+    except Exception as exc:  # noqa: BLE001 - one result kind unreadable: show the others
+        frames = pd.DataFrame()
+        st.caption(f"Screen sizes not shown: the stored screen results cannot be read "
+                   f"({type(exc).__name__}).")
     if not frames.empty:
         for plane in ("x", "y"):
             col = f"projection_{plane}_sigma_m"
@@ -312,11 +320,14 @@ def main() -> None:
     if live:
         st.caption(f"● Live: the watch service is running; numbers refresh every {LIVE_HEADLINE_S} s, "
                    f"trends every {LIVE_TRENDS_S} s.")
-    waiting = not _data.orbit_report(root, stamp, window.key).ready  # starts the analysis
+    # the orbit analysis of a new window starts after the first render, not during it
+    waiting = not _data.orbit_report(root, stamp, window.key, start=False).ready
     every = POLL_S if waiting else (LIVE_HEADLINE_S if live else None)
     st.fragment(headline, run_every=every)(root, waiting)
     st.divider()
     st.fragment(trends, run_every=LIVE_TRENDS_S if live else None)(root)
+    if waiting:
+        _data.orbit_report(root, stamp, window.key)
 
 
-main()
+_ui.guard(main, what="This page")
