@@ -1325,6 +1325,41 @@ def _all_finite(values: np.ndarray) -> bool:
         return bool(np.isfinite(np.sum(values)))
 
 
+def allan_deviation(values: np.ndarray, block_sizes: Sequence[int] | np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Allan deviation of a series over blocks of ``n`` consecutive pulses.
+
+    ``sigma_A(n) = sqrt(mean((m[k+1] - m[k])^2) / 2)`` with ``m`` the means of
+    non-overlapping blocks of ``n`` samples (Allan, "Statistics of atomic
+    frequency standards", Proc. IEEE 54, 221 (1966)).  White noise of rms
+    ``sigma`` gives ``sigma / sqrt(n)``; a linear drift of ``D`` per sample gives
+    ``D n / sqrt(2)`` (METHODS.md sections 5.2 and 6.5), so the minimum tells
+    how long to average before drift wins.  NaN samples are dropped first.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n_samples,)
+    block_sizes : sequence of int, optional
+        Default: powers of two up to a third of the series.
+
+    Returns
+    -------
+    block_sizes, deviation : ndarray
+    """
+    v = np.asarray(values, dtype=np.float64)
+    v = v[np.isfinite(v)]
+    if block_sizes is None:
+        block_sizes = 2 ** np.arange(0, max(int(math.log2(max(v.size // 3, 1))) + 1, 1))
+    sizes = np.asarray(block_sizes, dtype=np.int64)
+    out = np.full(sizes.size, np.nan)
+    for i, n in enumerate(sizes):
+        k = v.size // n
+        if n < 1 or k < 2:
+            continue
+        means = v[: k * n].reshape(k, n).mean(axis=1)
+        out[i] = math.sqrt(0.5 * float(np.mean(np.diff(means) ** 2)))
+    return sizes, out
+
+
 def _rms_from_residuals(r: np.ndarray, factor: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     sq = r * r * factor
     good = np.isfinite(sq)
@@ -2480,6 +2515,7 @@ __all__ = [
     "StepEvent",
     "TransmissionPair",
     "alias_frequency",
+    "allan_deviation",
     "analyze_orbit",
     "bpm_spectrum",
     "bucket_grid",

@@ -714,3 +714,14 @@ def test_missing_readings_and_a_dead_bpm_do_not_break_the_report(method):
             assert s.jitter_rms_m == pytest.approx(2 * UM, rel=0.15)
             assert s.steps == ()
     assert report.modes[1].bpms == ("BPM-01", "BPM-02", "BPM-03")
+
+
+def test_allan_deviation_of_white_noise_and_of_a_linear_drift():
+    """METHODS.md 6.5 (Allan, Proc. IEEE 54, 221 (1966)): unit white noise -> 1/sqrt(n)
+    (within the statistical spread, 5 % at the largest block used here); a drift of D per
+    sample -> D n / sqrt(2), exact."""
+    rng = np.random.default_rng(37)
+    sizes, dev = orbit.allan_deviation(rng.normal(size=400_000), [1, 4, 16, 64])
+    np.testing.assert_allclose(dev, 1 / np.sqrt(sizes), rtol=0.05)
+    sizes, dev = orbit.allan_deviation(0.3 * np.arange(10_000.0), [1, 10, 100])
+    np.testing.assert_allclose(dev, 0.3 * sizes / np.sqrt(2), rtol=1e-12)
