@@ -243,6 +243,39 @@ def test_identical_pixels_with_other_sidecars_are_two_frames(tmp_path):
     assert store.ingest(tmp_path / "b.png").status == "duplicate"
 
 
+@pytest.mark.parametrize("kind", ["png8", "png16", "npy_big_endian_u2", "npy_f4", "tiff16"])
+def test_images_read_back_bit_identical_after_ingest(tmp_path, kind):
+    """Through reader and store: the pixels read back equal the array that was written
+    (numpy .npy, Pillow PNG and tifffile TIFF as the writers of the inputs)."""
+    rng = np.random.default_rng(4)
+    if kind == "png8":
+        pixels = rng.integers(0, 256, (10, 12)).astype(np.uint8)
+        Image.fromarray(pixels).save(tmp_path / "img.png")
+        name = "img.png"
+    elif kind == "png16":
+        pixels = rng.integers(0, 65536, (10, 12)).astype(np.uint16)
+        Image.fromarray(pixels).save(tmp_path / "img.png")
+        name = "img.png"
+    elif kind == "tiff16":
+        import tifffile
+
+        pixels = rng.integers(0, 65536, (10, 12)).astype(">u2")
+        tifffile.imwrite(tmp_path / "img.tif", pixels)
+        name = "img.tif"
+    else:
+        dtype = ">u2" if kind == "npy_big_endian_u2" else "<f4"
+        pixels = (rng.random((10, 12)) * 4000).astype(dtype)
+        np.save(tmp_path / "img.npy", pixels)
+        name = "img.npy"
+    (tmp_path / "img.json").write_text(json.dumps(sidecar()))
+    store = Store(tmp_path / "store")
+    assert store.ingest(tmp_path / name).status == "stored"
+    (back,) = store.read_frames()
+    assert back.pixels.dtype == pixels.dtype.newbyteorder("=")
+    np.testing.assert_array_equal(back.pixels, pixels)
+    assert back.pixels.astype(pixels.dtype).tobytes() == pixels.tobytes()
+
+
 def test_missing_path_is_reported_not_raised(tmp_path):
     store = Store(tmp_path / "store")
     out = store.ingest(tmp_path / "nope.csv")
