@@ -564,20 +564,36 @@ def spot_counts(
     sigma_px: tuple[float, float],
     rho: float,
     peak: float,
+    *,
+    n_sigma: float = 8.0,
 ) -> np.ndarray:
     """Expected counts of a rotated Gaussian spot, shape ``(rows, cols)``.
 
     ``centre_px`` and ``sigma_px`` are ``(x, y)`` in pixels (x along columns) and
     ``rho`` the x-y correlation coefficient, so ``sigma_xy = rho sigma_x sigma_y``
-    and the tilt is ``0.5 atan2(2 sigma_xy, sigma_xx - sigma_yy)``.
+    and the tilt is ``0.5 atan2(2 sigma_xy, sigma_xx - sigma_yy)``.  Outside
+    ``n_sigma`` projected sigmas the counts are exactly zero (at 8 sigma a peak
+    of 1800 counts has fallen to 2e-11 counts).
     """
     rows, cols = shape
     sx, sy = sigma_px
-    dx = np.arange(cols, dtype=float)[None, :] - centre_px[0]
-    dy = np.arange(rows, dtype=float)[:, None] - centre_px[1]
+    out = np.zeros(shape)
+    c0, c1 = (
+        max(0, math.floor(centre_px[0] - n_sigma * sx)),
+        min(cols, math.ceil(centre_px[0] + n_sigma * sx) + 1),
+    )
+    r0, r1 = (
+        max(0, math.floor(centre_px[1] - n_sigma * sy)),
+        min(rows, math.ceil(centre_px[1] + n_sigma * sy) + 1),
+    )
+    if c1 <= c0 or r1 <= r0:
+        return out
+    dx = (np.arange(c0, c1, dtype=float)[None, :] - centre_px[0]) / sx
+    dy = (np.arange(r0, r1, dtype=float)[:, None] - centre_px[1]) / sy
     # quadratic form of the inverse covariance of a correlated bivariate normal
-    q = ((dx / sx) ** 2 - 2.0 * rho * (dx / sx) * (dy / sy) + (dy / sy) ** 2) / (1.0 - rho * rho)
-    return peak * np.exp(-0.5 * q)
+    q = (dx**2 - 2.0 * rho * dx * dy + dy**2) / (1.0 - rho * rho)
+    out[r0:r1, c0:c1] = peak * np.exp(-0.5 * q)
+    return out
 
 
 def tilt_rad(sigma_x_m: float, sigma_y_m: float, rho: float) -> float:
@@ -613,8 +629,13 @@ def camera_image(
     to the 12-bit range.
     """
     cam = _camera(screen, expected.shape)
-    img = rng.poisson(expected).astype(float) + cam.dark_pattern
-    img += READ_NOISE * rng.normal(0.0, 1.0, expected.shape)
+    img = cam.dark_pattern + READ_NOISE * rng.standard_normal(expected.shape, dtype=np.float32)
+    # photon noise only where the spot has light (the bounding box of non-zero counts)
+    rows = np.flatnonzero(expected.any(axis=1))
+    cols = np.flatnonzero(expected.any(axis=0))
+    if rows.size:
+        box = np.s_[rows[0] : rows[-1] + 1, cols[0] : cols[-1] + 1]
+        img[box] += rng.poisson(expected[box])
     flat = img.reshape(-1)
     flat[cam.hot_index] += cam.hot_counts
     flat[rng.choice(flat.size, hits, replace=False)] += rng.uniform(800.0, 2500.0, hits)
@@ -784,8 +805,9 @@ def _write_wire(out: Path, date: str, t0: pd.Timestamp, t1: pd.Timestamp, seed: 
 
 
 def _save_png(path: Path, pixels: np.ndarray) -> None:
-    # 16-bit grayscale PNG (Pillow mode "I;16"); compress level 3 is the fastest here
-    Image.fromarray(pixels).save(path, format="PNG", compress_level=3)
+    # 16-bit grayscale PNG (Pillow mode "I;16"); zlib level 1: 15 ms a frame against
+    # 21 ms at level 3 and 72 ms at the default 6, for files only 7 % larger
+    Image.fromarray(pixels).save(path, format="PNG", compress_level=1)
 
 
 def _sidecar(device: str, when: pd.Timestamp, pixel_size_m: float, dark: str) -> str:
