@@ -128,7 +128,7 @@ class Step:
 class StepEvent:
     """Steps of several BPM planes at the same time (within one step bucket).
 
-    ``time`` is the earliest member's; ``members`` are ``(bpm, plane, size_m)``
+    ``time`` is the median member's; ``members`` are ``(bpm, plane, size_m)``
     in line order; ``slow_changes`` are ``(channel, change, unit)`` of slow
     channels (magnet currents, ...) that stepped at the same time (see
     :func:`slow_steps_at`), which may explain the step.  ``message`` reads the pattern as METHODS.md section 5.3 does:
@@ -2005,7 +2005,9 @@ def group_steps(
             note = f"single BPM ({members[0][0]}): electronics or a mechanical change?"
         else:
             note = f"{n_bpms} BPMs together from {members[0][0]}: a kick or a magnet change?"
-        events.append(StepEvent(min(st.time for _, _, st in group), tuple(members), note))
+        # the median member's time: one weak member refined a few pulses off does not move it
+        times = sorted(st.time for _, _, st in group)
+        events.append(StepEvent(times[(len(times) - 1) // 2], tuple(members), note))
     return tuple(events)
 
 
