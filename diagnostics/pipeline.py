@@ -710,13 +710,16 @@ def summarize_orbit(store: Any, start: Any = None, end: Any = None, interval: st
 
 
 def provisional_scan_id(spec: Any) -> str:
-    """Id under which provisional fits of a scan still being recorded are written.
+    """The id a scan will have in the store, known before it is stored.
 
-    It depends only on the scan's name and start time, which do not change while
-    steps are added, so every provisional row and the final row share it.
+    It is :func:`diagnostics.store.scan_id_of` (from the scan's name and start
+    time, which do not change while steps are added), so the provisional rows of a
+    scan still being recorded and its final row share ``scan_id``, and "the latest
+    row per scan" is the final one once the scan is complete.
     """
-    key = f"{spec.name}|{_iso(spec.timestamp)}"
-    return hashlib.sha256(key.encode()).hexdigest()[:16]
+    from diagnostics.store import scan_id_of
+
+    return scan_id_of(spec)
 
 
 #: Raw kinds whose rows get a per-item analysis as soon as they are stored.

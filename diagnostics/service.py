@@ -70,7 +70,7 @@ import threading
 import time
 import uuid
 from collections.abc import Mapping, Sequence
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -345,6 +345,9 @@ class WatchService:
             (self.inbox / sub).mkdir(parents=True, exist_ok=True)
         self._catalog_hold = self._hold_catalog()
         self._pool = ThreadPoolExecutor(max_workers=self.config.ingest_threads, thread_name_prefix="ingest")
+        self._housekeeping = ThreadPoolExecutor(max_workers=1, thread_name_prefix="housekeeping")
+        self._job: Future | None = None
+        self._stats_lock = threading.Lock()
 
     def _hold_catalog(self) -> sqlite3.Connection | None:
         """Keep one idle connection to the store's catalog open while the service runs.
@@ -778,9 +781,7 @@ class WatchService:
             try:
                 outcome = future.result()
             except Exception as exc:  # the store promises not to raise for bad input; keep going
-                self.stats.errors += 1
-                self.stats.last_error = f"{manifest.get('rel')}: {type(exc).__name__}: {exc}"
-                self.log(f"error: {self.stats.last_error}")
+                self._error(f"{manifest.get('rel')}: {type(exc).__name__}: {exc}")
                 continue
             handled.append((work, manifest, outcome))
             status = getattr(outcome, "status", "stored")
@@ -791,19 +792,9 @@ class WatchService:
             elif status == "quarantined":
                 self.stats.quarantined += 1
                 self.log(f"quarantined {manifest.get('rel')}: {getattr(outcome, 'message', '')}")
-        outcomes = [o for _w, _m, o in handled if getattr(o, "status", "") in ("stored", "duplicate")]
-        if outcomes:
-            try:
-                written = pipeline.analyze_ingested(
-                    self.store, outcomes, options=self.config.options, version=self.version,
-                    skip_existing=recovering,
-                )
-                self.stats.results_written += written
-            except Exception as exc:  # analysis trouble must not lose the inputs: they stay in .work
-                self.stats.errors += 1
-                self.stats.last_error = f"analysis: {type(exc).__name__}: {exc}"
-                self.log(f"error: {self.stats.last_error}")
-                return 0
+        good = [(m, o) for _w, m, o in handled if getattr(o, "status", "") in ("stored", "duplicate")]
+        if good:
+            self.stats.results_written += self._analyse([o for _m, o in good], good, recovering)
         for work, manifest, outcome in handled:
             status = getattr(outcome, "status", "stored")
             # mark the unit finished with one atomic rename, so a restart that finds it
@@ -813,6 +804,34 @@ class WatchService:
             self._finish(finished, manifest, status)
             self.stats.files_processed += 1
         return len(handled)
+
+    def _analyse(self, outcomes: list[Any], labelled: list[tuple[Mapping[str, Any], Any]],
+                 recovering: bool) -> int:
+        """Analyse a batch of stored inputs; if the batch fails, each input on its own.
+
+        An input whose analysis fails by itself is logged as an error and finished
+        anyway: its data are stored, only its result row is missing (``beamdiag
+        reanalyze`` can add it), and the inbox must not jam on it.
+        """
+        def run(batch: list[Any]) -> int:
+            return pipeline.analyze_ingested(self.store, batch, options=self.config.options,
+                                             version=self.version, skip_existing=recovering)
+
+        try:
+            return run(outcomes)
+        except Exception as exc:  # one bad item must not take the batch's results with it
+            if len(outcomes) == 1:
+                self._error(f"analysis of {labelled[0][0].get('rel')}: {type(exc).__name__}: {exc} "
+                            "(stored without a result row)")
+                return 0
+        written = 0
+        for manifest, outcome in labelled:
+            try:
+                written += run([outcome])
+            except Exception as exc:  # noqa: BLE001 - logged, input finished without a result
+                self._error(f"analysis of {manifest.get('rel')}: {type(exc).__name__}: {exc} "
+                            "(stored without a result row)")
+        return written
 
     def provisional_fit(self, rel: str) -> None:
         """Fit a scan folder that is still filling, if it has a new step; write a provisional row."""
@@ -833,37 +852,69 @@ class WatchService:
         self.stats.provisional_fits += 1
         self.log(f"provisional fit of {rel}: {len(spec.steps)} steps")
 
+    def _error(self, message: str) -> None:
+        with self._stats_lock:
+            self.stats.errors += 1
+            self.stats.last_error = message
+        self.log(f"error: {message}")
+
+    def _orbit_job(self) -> None:
+        cfg = self.config
+        try:
+            span = self.store.time_range("bpm")
+            if span is None:
+                return
+            # the last interval of data (data time, not wall time: files may come late)
+            end = span[1] + pd.Timedelta(1, "ns")
+            start = end - pd.Timedelta(cfg.orbit_interval)
+            rows = pipeline.summarize_orbit(self.store, start, end, cfg.orbit_interval,
+                                            options=cfg.options, version=self.version)
+            with self._stats_lock:
+                self.stats.orbit_summaries += 1 if rows else 0
+            self._last_orbit_wall = _iso(_now_utc())
+        except Exception as exc:  # an orbit summary failing must not stop ingest
+            self._error(f"orbit summary: {type(exc).__name__}: {exc}")
+
+    def _compact_job(self, dates: list[str] | None) -> None:
+        try:
+            self.store.compact(dates=dates)
+            with self._stats_lock:
+                self.stats.compactions += 1
+            self._last_compact_wall = _iso(_now_utc())
+        except Exception as exc:  # compaction is housekeeping; log and go on
+            self._error(f"compact: {type(exc).__name__}: {exc}")
+
     def _periodic(self) -> None:
+        """Start the orbit summary or a compaction when due, in the background.
+
+        They run one at a time on a thread of their own, so a long compaction of a
+        day's partitions does not hold up ingest; a job that is due while the
+        previous one still runs waits for the next cycle.
+        """
+        if self._job is not None and not self._job.done():
+            return
         now = time.monotonic()
         cfg = self.config
-        if cfg.orbit_every_s and now - self._t_orbit >= cfg.orbit_every_s:
-            self._t_orbit = now
-            try:
-                span = self.store.time_range("bpm")
-                if span is not None:
-                    end = span[1] + pd.Timedelta(1, "ns")
-                    start = end - pd.Timedelta(cfg.orbit_interval)
-                    rows = pipeline.summarize_orbit(self.store, start, end, cfg.orbit_interval,
-                                                    options=cfg.options, version=self.version)
-                    self.stats.orbit_summaries += 1 if rows else 0
-                    self._last_orbit_wall = _iso(_now_utc())
-            except Exception as exc:  # an orbit summary failing must not stop ingest
-                self.stats.errors += 1
-                self.stats.last_error = f"orbit summary: {type(exc).__name__}: {exc}"
-                self.log(f"error: {self.stats.last_error}")
         today = _now_utc().date()
-        day_over = today != self._day
-        if (cfg.compact_every_s and now - self._t_compact >= cfg.compact_every_s) or day_over:
+        if today != self._day:  # the UTC day is over: compact its partitions now
+            finished, self._day = self._day, today
             self._t_compact = now
-            self._day = today
-            try:
-                self.store.compact()
-                self.stats.compactions += 1
-                self._last_compact_wall = _iso(_now_utc())
-            except Exception as exc:  # compaction is housekeeping; log and go on
-                self.stats.errors += 1
-                self.stats.last_error = f"compact: {type(exc).__name__}: {exc}"
-                self.log(f"error: {self.stats.last_error}")
+            self._job = self._housekeeping.submit(self._compact_job, [finished.isoformat()])
+            return
+        due = []  # (since when due, job): the one due longest runs first
+        if cfg.orbit_every_s and now - self._t_orbit >= cfg.orbit_every_s:
+            due.append((self._t_orbit + cfg.orbit_every_s, "orbit"))
+        if cfg.compact_every_s and now - self._t_compact >= cfg.compact_every_s:
+            due.append((self._t_compact + cfg.compact_every_s, "compact"))
+        if not due:
+            return
+        job = min(due)[1]
+        if job == "orbit":
+            self._t_orbit = now
+            self._job = self._housekeeping.submit(self._orbit_job)
+        else:
+            self._t_compact = now
+            self._job = self._housekeeping.submit(self._compact_job, None)
 
     def recover(self) -> int:
         """Finish what an earlier run left in ``.work`` (after a crash or a stop)."""
@@ -895,9 +946,7 @@ class WatchService:
                 try:
                     self.provisional_fit(rel)
                 except Exception as exc:  # a half-recorded scan must not stop the service
-                    self.stats.errors += 1
-                    self.stats.last_error = f"provisional fit of {rel}: {type(exc).__name__}: {exc}"
-                    self.log(f"error: {self.stats.last_error}")
+                    self._error(f"provisional fit of {rel}: {type(exc).__name__}: {exc}")
             self._periodic()
         self._backlog = len(ready) > len(batch)
         self._pending, oldest = self._pending_inputs()
@@ -954,6 +1003,7 @@ class WatchService:
             if self._observer is not None:
                 self._observer.stop()
             self._pool.shutdown(wait=True, cancel_futures=True)
+            self._housekeeping.shutdown(wait=True)  # a compaction in progress finishes
             if self._catalog_hold is not None:
                 self._catalog_hold.close()
             with contextlib.suppress(OSError):

@@ -574,6 +574,7 @@ def _bad_inputs(inbox: Path) -> dict[str, bytes]:
     return bad
 
 
+@pytest.mark.slow
 def test_bad_inputs_are_quarantined_and_the_service_goes_on(tmp_path):
     """(c): empty CSV, text in a numeric column, a non-PNG .png, an image without sidecar."""
     inbox, store_dir = tmp_path / "inbox", tmp_path / "store"
@@ -605,6 +606,7 @@ def test_bad_inputs_are_quarantined_and_the_service_goes_on(tmp_path):
     assert beat["quarantined"] == 4 and beat["state"] == "stopped"
 
 
+@pytest.mark.slow
 def test_slowly_growing_file_is_not_ingested_half_written(tmp_path):
     """(d): a BPM file appended to over several seconds (no .part) is stored whole."""
     inbox, store_dir = tmp_path / "inbox", tmp_path / "store"
@@ -631,3 +633,109 @@ def test_slowly_growing_file_is_not_ingested_half_written(tmp_path):
     store = Store(store_dir)
     assert len(store.read_bpm()) == 24 * 6
     assert len(store.quarantine_list()) == 0
+
+
+def _scan_manifest(n_steps: int, expected: int) -> dict:
+    """scan.json of a quad scan whose sizes follow from a known beam (see test_pipeline)."""
+    from test_pipeline import synthetic_scan
+
+    spec, _ = synthetic_scan(n_steps=expected)
+    steps = [{"k1_per_m2": s.k1_per_m2, "sigma_x_m": s.sigma_x_m, "sigma_y_m": s.sigma_y_m,
+              "sigma_x_err_m": s.sigma_x_err_m, "sigma_y_err_m": s.sigma_y_err_m} for s in spec.steps[:n_steps]]
+    return {"name": "qs-live", "timestamp": "2026-11-30T08:15:00Z", "particle": "electron",
+            "kinetic_energy_MeV": 150.0, "quadrupole": {"name": "Q-05", "length_m": 0.2},
+            "transport": {"drift_m": 4.0}, "monitor": {"name": "WS-02", "resolution_m": 0.0},
+            "expected_steps": expected, "steps": steps}
+
+
+def test_filling_scan_gets_provisional_fits_then_the_final_one(tmp_path):
+    """A scan folder still being recorded: a provisional row after each new step (from 3
+    steps on), the folder left in place; when complete, stored and fitted for good."""
+    from test_pipeline import synthetic_scan
+
+    from diagnostics.store import Store
+
+    inbox, store = tmp_path / "inbox", Store(tmp_path / "store")
+    svc = WatchService(inbox, store, WatchConfig(interval_s=0.05, stable_seconds=60, orbit_every_s=0,
+                                                 compact_every_s=0), log=open(os.devnull, "w"))  # noqa: SIM115
+    folder = inbox / "qs-live"
+    for n in (2, 3, 4, 5):
+        _put_renamed(folder, "scan.json", json.dumps(_scan_manifest(n, 6)).encode())
+        svc.cycle()
+        assert folder.exists(), "a filling scan stays in the inbox"
+    rows = store.read_results("scans")
+    assert list(rows["n_steps"]) == [3, 4, 5]
+    assert rows["provisional"].all() and all("provisional" in json.loads(f) if isinstance(f, str) else "provisional" in f
+                                             for f in rows["flags"])
+    _put_renamed(folder, "scan.json", json.dumps(_scan_manifest(6, 6)).encode())
+    svc.cycle()
+    assert not folder.exists() and (inbox / "done" / "qs-live" / "scan.json").exists()
+    rows = store.read_results("scans")
+    assert list(rows["provisional"]) == [True, True, True, False]
+    assert rows["scan_id"].nunique() == 1 == rows["scan_key"].nunique()
+    assert rows["scan_id"].iloc[0] == store.list_scans()["scan_id"].iloc[0]
+    latest = rows.sort_values("created").iloc[-1]
+    _, eps = synthetic_scan(n_steps=6)
+    assert latest["n_steps"] == 6 and latest["x_emittance_m_rad"] == pytest.approx(eps["x"], rel=1e-6)
+
+
+def _bpm_block(start: pd.Timestamp, seconds: float, rng: np.random.Generator, rate_hz: float = 10.0) -> bytes:
+    lines = ["timestamp,bpm,x_mm,y_mm,sum"]
+    for k in range(int(seconds * rate_hz)):
+        t = (start + pd.Timedelta(int(k * 1000 / rate_hz), "ms")).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
+        lines += [f"{t},{b},{rng.normal(0, 0.005):.5f},{rng.normal(0, 0.005):.5f},1.0" for b in BPMS[:4]]
+    return ("\n".join(lines) + "\n").encode()
+
+
+def test_orbit_summary_and_compaction_run_in_the_background(tmp_path):
+    from diagnostics.store import Store
+
+    inbox, store = tmp_path / "inbox", Store(tmp_path / "store")
+    svc = WatchService(inbox, store, WatchConfig(interval_s=0.05, stable_seconds=60, orbit_every_s=0.01,
+                                                 orbit_interval="5min", compact_every_s=0.01),
+                       log=open(os.devnull, "w"))  # noqa: SIM115
+    rng = np.random.default_rng(2)
+    for k in range(3):
+        _put_renamed(inbox, f"orbit_{k}.csv", _bpm_block(T_START + pd.Timedelta(60 * k, "s"), 60, rng))
+    time.sleep(0.02)
+    svc.cycle()  # ingest, then start the orbit summary in the background
+    assert len(store.live_files("bpm")) == 3
+    assert wait_for(lambda: svc._job.done(), 60)
+    orbit = store.read_results("orbit")
+    assert sorted(set(orbit["bpm"])) == list(BPMS[:4]) and set(orbit["plane"]) == {"x", "y"}
+    assert set(orbit["interval_start"]) == {"2026-11-30T09:00:00Z"} and len(orbit) == 8
+    time.sleep(0.02)
+    svc.cycle()  # now the compaction is due
+    assert wait_for(lambda: svc._job.done(), 60)
+    assert svc.stats.compactions == 1 and svc.stats.errors == 0, svc.stats.last_error
+    assert len(store.live_files("bpm")) == 1
+    assert len(store.read_bpm()) == 3 * 600 * 4
+
+
+def test_an_input_whose_analysis_fails_is_finished_without_stopping_the_batch(tmp_path, monkeypatch):
+    from diagnostics import pipeline
+    from diagnostics.store import Store
+
+    inbox, store = tmp_path / "inbox", Store(tmp_path / "store")
+    svc = WatchService(inbox, store, WatchConfig(interval_s=0.05, stable_seconds=60, orbit_every_s=0,
+                                                 compact_every_s=0), log=open(os.devnull, "w"))  # noqa: SIM115
+    rng = np.random.default_rng(4)
+    for i in range(3):
+        png, sidecar, _ = frame_files(i, rng)
+        _put_renamed(inbox, f"s{i}.json", sidecar)
+        _put_renamed(inbox, f"s{i}.png", png)
+    real = pipeline.analyze_frame_items
+
+    def broken(items, options=None):
+        if any(frame.timestamp == pd.Timestamp(json.loads(frame_files(1, np.random.default_rng(4))[1])["timestamp"])
+               for _id, frame, _x in items):
+            raise ValueError("simulated analysis bug")
+        return real(items, options)
+
+    monkeypatch.setattr(pipeline, "analyze_frame_items", broken)
+    svc.cycle()
+    assert sorted(p.name for p in (inbox / "done").iterdir()) == ["s0.json", "s0.png", "s1.json", "s1.png",
+                                                                  "s2.json", "s2.png"]
+    assert len(store.frame_index()) == 3
+    assert len(store.read_results("frames")) == 2
+    assert svc.stats.errors == 1 and "simulated analysis bug" in svc.stats.last_error
