@@ -16,8 +16,8 @@ from pathlib import Path
 from diagnostics import demo
 from diagnostics.errors import InputError
 
-#: Entries a folder may hold for ``--force`` to treat it as an old demo store and remove it.
-_STORE_MARKERS = ("catalog.sqlite", "raw", "bpm", "frames", "profiles", "slow", "scans", "results")
+#: The store's ledger: a folder holding it is a beamdiag store that ``--force`` may replace.
+_STORE_MARKER = "catalog.sqlite"
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:
@@ -70,12 +70,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def _looks_like_store(path: Path) -> bool:
+    """A beamdiag store (it has the ledger), or what a demo run left before the store existed."""
     names = {p.name for p in path.iterdir()}
-    return bool(names) and names <= set(_STORE_MARKERS) | {
-        "catalog.sqlite-wal",
-        "catalog.sqlite-shm",
-        "quarantine",
-    }
+    return _STORE_MARKER in names or names == {"raw"}
 
 
 def run(args: argparse.Namespace) -> int:
