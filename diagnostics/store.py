@@ -7,14 +7,17 @@ Layout (one folder, ``STORE``)::
     STORE/bpm/date=YYYY-MM-DD/part-<sha16>-<n>.parquet        one row per BPM reading
     STORE/slow/date=YYYY-MM-DD/part-<sha16>-<n>.parquet       one row per slow reading
     STORE/scans/date=YYYY-MM-DD/part-<sha16>-<n>.parquet      one row per scan (its manifest)
+    STORE/rollup/{bpm,slow}/date=YYYY-MM-DD/part-<sha16>-<n>.parquet
+                                                              10-s partial aggregates
     STORE/results/<kind>/date=YYYY-MM-DD/part-*.parquet       analysis results
     STORE/quarantine/YYYY-MM-DD/<name> + <name>.error.json    copies of rejected inputs
     STORE/catalog.sqlite                                      ledger and manifest
 
-``<sha16>`` is the start of the SHA-256 of the input's bytes, ``<n>`` numbers the
-date partitions one input spans.  A repeated write of the same input therefore
-lands on the same names with the same bytes: ingest is idempotent, and after a
-crash a rerun completes the store without duplicates.
+``<sha16>`` is the start of the SHA-256 of the input (its bytes; for an image,
+its bytes with its sidecar's and dark frame's; for a scan folder, all its
+files), ``<n>`` numbers the date partitions one input spans.  A repeated write
+of the same input therefore lands on the same names with the same bytes: ingest
+is idempotent, and after a crash a rerun completes the store without duplicates.
 
 How the store stays consistent
 ------------------------------
@@ -35,6 +38,15 @@ How the store stays consistent
 * **Scans** have a stable id (from name and timestamp).  Re-ingesting a grown
   scan folder writes a new version; the catalog records the current one and
   readers drop rows of superseded versions.
+
+* **Rollups.**  With every BPM or slow file the store writes its 10-s
+  partial aggregates (:func:`rollup_table`) and makes both live in the same
+  transaction; trends over a shift read those (about 1/100 of the rows).
+
+Tools that glob the folders themselves (DuckDB ``read_parquet('STORE/bpm/**/*.parquet')``,
+Dask) read whole files only, but may for a moment count compacted rows twice
+and, after a crash, see files a rerun has not registered yet; the read
+functions and :meth:`Store.duckdb` views are exact.
 
 Units are in the Arrow field metadata (``{"unit": "m"}``) and the schema
 metadata carries ``schema_version``.  Reads unify the schemas of all files
@@ -870,25 +882,52 @@ def _referenced_darks(files: Sequence[Path], readers: Any) -> set[Path]:
 def collect_inputs(paths: Iterable[str | Path]) -> list[Path]:
     """The inputs under ``paths``, each once, in order.
 
-    Walking uses :func:`diagnostics.readers.iter_inputs`: folders recursively in
-    sorted order, a scan folder (with ``scan.json``) as one input, image
+    Folders are walked with :func:`diagnostics.readers.iter_inputs`: recursively
+    in sorted order, a scan folder (with ``scan.json``) as one input, image
     sidecars, the dark frames they name and hidden or partial files skipped.
     Below a folder, this also skips dark frames that a sidecar in another
     folder names (``"dark": "darks/SCR-01_dark.png"``) and files whose suffix no
-    reader takes (``README.md``, notes): they are no measurement.  A path named
-    explicitly is always returned, even if it does not exist (ingest reports it).
+    reader takes (``README.md``, notes): they are no measurement.  Files named
+    explicitly are kept unless they are a sidecar, a dark frame named by a
+    sidecar among them, or inside a scan folder; a missing one is kept too
+    (ingest reports it).  The sidecars of a folder are read once, however many
+    of its files are named, so a list of thousands of images stays fast.
     """
     readers = _readers()
     suffixes = _input_suffixes(readers)
+    paths = [Path(p) for p in paths]
+    files = [p for p in paths if not p.is_dir()]
+    darks = _referenced_darks([f for f in files if f.is_file()], readers)
+    images = {(f.parent, f.stem.lower()) for f in files
+              if f.suffix.lower() in readers.screen.IMAGE_SUFFIXES}
+    scan_folder: dict[Path, bool] = {}
+
+    def in_scan_folder(p: Path) -> bool:
+        for parent in p.absolute().parents:
+            if parent not in scan_folder:
+                scan_folder[parent] = readers.scan.is_scan_folder(parent)
+            if scan_folder[parent]:
+                return True
+        return False
+
+    def sidecar(p: Path) -> bool:
+        return p.suffix.lower() == ".json" and (
+            (p.parent, p.stem.lower()) in images
+            or any(p.with_suffix(x).is_file() for x in readers.screen.IMAGE_SUFFIXES))
+
     out: list[Path] = []
     seen: set[Path] = set()
     for raw in paths:
-        raw = Path(raw)
-        found = list(readers.iter_inputs([raw]))
-        if raw.is_dir() and not readers.scan.is_scan_folder(raw):
-            darks = _referenced_darks([f for f in found if f.is_file()], readers)
-            found = [f for f in found if f.is_dir() or (
-                f.suffix.lower() in suffixes and f.resolve() not in darks)]
+        if raw.is_dir():
+            found = list(readers.iter_inputs([raw]))
+            if not readers.scan.is_scan_folder(raw):
+                walked_darks = _referenced_darks([f for f in found if f.is_file()], readers)
+                found = [f for f in found if f.is_dir() or (
+                    f.suffix.lower() in suffixes and f.resolve() not in walked_darks)]
+        elif raw.exists() and (sidecar(raw) or raw.resolve() in darks or in_scan_folder(raw)):
+            found = []
+        else:
+            found = [raw]
         for p in found:
             key = p.resolve() if p.exists() else p
             if key not in seen:
