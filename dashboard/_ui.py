@@ -52,6 +52,7 @@ def sidebar() -> None:
     with st.sidebar:
         st.caption(f"Store: `{root}`" if root else "Store: not set")
         st.caption(f"beamdiag {__version__} · read-only view")
+        st.caption(f"⚠️ {SAFETY_NOTE}")
 
 
 def footer() -> None:
@@ -195,15 +196,17 @@ def fmt_num(value: Any, scale: float = 1.0, digits: int = 3) -> str:
     return f"{float(value) * scale:.{digits}g}"
 
 
-def fmt_pm(value: Any, err: Any, scale: float = 1.0, unit: str = "", digits: int = 3) -> str:
-    """``'2.31 ± 0.05 mm mrad'``: the uncertainty rounded, the value to the same decimal.
+def pm_parts(value: Any, err: Any, scale: float = 1.0, unit: str = "", digits: int = 3) -> tuple[str, str]:
+    """``("2.31", "± 0.05 mm mrad")``: the uncertainty rounded, the value to the same decimal.
 
     The uncertainty keeps two significant digits when its leading two digits
     are below 35 and one otherwise (the rounding rule of the Particle Data
     Group, Review of Particle Physics, "Introduction": rounding of errors).
+    Without an uncertainty the value gets ``digits`` significant digits and
+    the second part is the unit alone.
     """
     if not finite(value):
-        return "–"
+        return "–", unit
     v = float(value) * scale
     if finite(err) and float(err) > 0:
         e = float(err) * scale
@@ -211,10 +214,14 @@ def fmt_pm(value: Any, err: Any, scale: float = 1.0, unit: str = "", digits: int
         leading = int(abs(e) / 10 ** (exponent - 1))  # first two significant digits, 10..99
         sig = 2 if leading < 35 else 1
         decimals = max(0, sig - 1 - exponent)
-        text = f"{v:.{decimals}f} ± {round(e, decimals):.{decimals}f}"
-    else:
-        text = f"{v:.{digits}g}"
-    return f"{text} {unit}".strip()
+        return f"{v:.{decimals}f}", f"± {round(e, decimals):.{decimals}f} {unit}".strip()
+    return f"{v:.{digits}g}", unit
+
+
+def fmt_pm(value: Any, err: Any, scale: float = 1.0, unit: str = "", digits: int = 3) -> str:
+    """``'2.31 ± 0.05 mm mrad'`` (see :func:`pm_parts` for the rounding)."""
+    text, rest = pm_parts(value, err, scale, unit, digits)
+    return text if text == "–" else f"{text} {rest}".strip()
 
 
 def fmt_time(ts: Any) -> str:
@@ -279,8 +286,12 @@ def flag_help(flags: Sequence[str]) -> str:
 
 def base_layout(fig: go.Figure, *, title: str | None = None, height: int = 320,
                 y_title: str | None = None, x_title: str | None = None) -> go.Figure:
-    fig.update_layout(height=height, margin=dict(l=10, r=10, t=40 if title else 10, b=10),
-                      title=title, legend=dict(orientation="h", yanchor="bottom", y=1.02, x=0),
+    """Common layout: the title on top, the legend in one row under it, tight margins."""
+    top = 80 if title else 40
+    fig.update_layout(height=height, margin=dict(l=10, r=10, t=top, b=10),
+                      title=dict(text=title, y=0.99, yanchor="top", x=0.0, xanchor="left",
+                                 font=dict(size=15)) if title else None,
+                      legend=dict(orientation="h", yanchor="bottom", y=1.0, x=0),
                       hovermode="x unified")
     if y_title:
         fig.update_yaxes(title=y_title)
@@ -335,11 +346,22 @@ def plot(fig: go.Figure, *, key: str | None = None) -> None:
 
 
 def big_number(label: str, value: str, *, help: str | None = None, sub: str | None = None,
-               delta: str | None = None, delta_color: str = "off") -> None:
-    """A headline number in a bordered card: ``st.metric`` with a one-line note under it."""
+               pm: str | None = None) -> None:
+    """A headline number in a bordered card.
+
+    ``value`` is drawn biggest; ``pm`` (the uncertainty and unit, e.g.
+    ``"± 0.011 mm mrad"``) sits right under it in smaller grey type so a long
+    value is never cut off; ``sub`` is a one-line note.
+    """
     with st.container(border=True):
-        st.metric(label, value, delta=delta, delta_color=delta_color, help=help)
+        st.metric(label, value, delta=pm, delta_color="off", delta_arrow="off", help=help)
         st.caption(sub or "\u00a0")
+
+
+def big_pm(label: str, value: Any, err: Any, scale: float, unit: str, **kwargs) -> None:
+    """:func:`big_number` of a value with its uncertainty (PDG rounding)."""
+    text, rest = pm_parts(value, err, scale, unit)
+    big_number(label, text, pm=rest, **kwargs)
 
 
 def small_fact(label: str, value: str, *, help: str | None = None) -> None:

@@ -10,7 +10,6 @@ shipped config are checked against Streamlit's own option registry.
 
 from __future__ import annotations
 
-import base64
 import math
 import re
 import time
@@ -89,6 +88,12 @@ def metric(at: AppTest, label: str):
     found = [m for m in at.metric if m.label == label]
     assert found, f"no metric {label!r}; have {[m.label for m in at.metric]}"
     return found[0]
+
+
+def with_pm(at: AppTest, label: str) -> str:
+    """A headline value with its uncertainty as shown: ``'1.204 ± 0.014 mm mrad'``."""
+    m = metric(at, label)
+    return f"{m.value} {m.delta}" if m.delta else m.value
 
 
 def fact(at: AppTest, label: str) -> str:
@@ -274,7 +279,7 @@ def test_shift_headline_matches_the_orbit_analysis_and_stored_emittance(monkeypa
     # emittance: the newest stored scan result, in mm mrad
     scans = Store(demo_store, read_only=True).read_results("scans")
     latest = scans.iloc[-1]
-    shown = metric(at, "Emittance x (norm.)").value
+    shown = with_pm(at, "Emittance x (norm.)")
     assert shown.endswith("mm mrad")
     assert math.isclose(number(shown), latest["x_norm_emittance_m_rad"] * 1e6,
                         abs_tol=latest["x_norm_emittance_err_m_rad"] * 1e6)
@@ -320,14 +325,14 @@ def test_quad_scan_page_shows_the_library_fit_and_reruns_with_another_method(mon
     at = app_for(monkeypatch, demo_store, "views/quad_scan.py")
     assert not at.exception
     ref = emittance.analyze_scan(spec)
-    assert metric(at, "Emittance x (norm.)").value == _ui.fmt_pm(
+    assert with_pm(at, "Emittance x (norm.)") == _ui.fmt_pm(
         ref.x.norm_emittance_m_rad, ref.x.norm_emittance_err_m_rad, 1e6, "mm mrad")
     assert len(at.get("download_button")) == 2
     at.radio(key="scan_method").set_value("thin")
     at.button[0].click().run()  # the form's "Re-run fit"
     assert not at.exception
     thin = emittance.analyze_scan(spec, method="thin")
-    assert metric(at, "Emittance y (norm.)").value == _ui.fmt_pm(
+    assert with_pm(at, "Emittance y (norm.)") == _ui.fmt_pm(
         thin.y.norm_emittance_m_rad, thin.y.norm_emittance_err_m_rad, 1e6, "mm mrad")
 
 
@@ -348,8 +353,8 @@ def test_profiles_page_shows_the_image_analysis_of_the_chosen_frame(monkeypatch,
     frame = store.read_frame(index["id"].iloc[0])
     ref = images.analyze_image(frame.pixels, pixel_size_m=frame.pixel_size_m, dark=frame.dark,
                                bit_depth=frame.bit_depth, roi=frame.roi)
-    assert metric(at, "σx").value == _ui.fmt_pm(ref.sigma_x_m, ref.sigma_x_err_m, 1e6, "µm")
-    assert metric(at, "σy").value == _ui.fmt_pm(ref.sigma_y_m, ref.sigma_y_err_m, 1e6, "µm")
+    assert with_pm(at, "σx") == _ui.fmt_pm(ref.sigma_x_m, ref.sigma_x_err_m, 1e6, "µm")
+    assert with_pm(at, "σy") == _ui.fmt_pm(ref.sigma_y_m, ref.sigma_y_err_m, 1e6, "µm")
 
 
 def test_profiles_page_wire_fit_matches_analyze_profile(monkeypatch, demo_store):
@@ -364,7 +369,7 @@ def test_profiles_page_wire_fit_matches_analyze_profile(monkeypatch, demo_store)
     index = index[(index["plane"] == plane) & index["scan"].isna()].sort_values("timestamp")
     prof = store.read_profile(index["id"].iloc[-1])  # the slider starts at the newest
     ref = profiles.analyze_profile(prof.position_m, prof.signal)
-    assert metric(at, f"σ{plane} (gaussian)").value == _ui.fmt_pm(ref.sigma_m, ref.sigma_err_m, 1e6, "µm")
+    assert with_pm(at, f"σ{plane} (gaussian)") == _ui.fmt_pm(ref.sigma_m, ref.sigma_err_m, 1e6, "µm")
 
 
 def test_orbit_page_matches_the_analysis_and_follows_the_bpm_choice(monkeypatch, demo_store):
@@ -391,6 +396,4 @@ def test_handover_notes_reach_the_downloaded_report(monkeypatch, demo_store):
     at.button[0].click().run()
     assert not at.exception
     frame = next(e for e in at.get("iframe"))
-    src = frame.proto.src if hasattr(frame, "proto") else ""
-    html = base64.b64decode(src.split("base64,", 1)[1]).decode("utf-8")
-    assert note in html
+    assert note in frame.proto.srcdoc

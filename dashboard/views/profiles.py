@@ -153,17 +153,17 @@ def screens(root: str, stamp: str, window: _data.Window) -> None:
         return
     cols = st.columns(4)
     with cols[0]:
-        _ui.big_number("σx", _ui.fmt_pm(result.sigma_x_m, result.sigma_x_err_m, 1e6, "µm"),
+        _ui.big_pm("σx", result.sigma_x_m, result.sigma_x_err_m, 1e6, "µm",
                        help=f"{result.sigma_x_m!r} m ({result.method})")
     with cols[1]:
-        _ui.big_number("σy", _ui.fmt_pm(result.sigma_y_m, result.sigma_y_err_m, 1e6, "µm"),
+        _ui.big_pm("σy", result.sigma_y_m, result.sigma_y_err_m, 1e6, "µm",
                        help=f"{result.sigma_y_m!r} m ({result.method})")
     with cols[2]:
         _ui.big_number("Tilt", f"{_ui.fmt_num(math.degrees(result.tilt_rad), 1, 3)}°",
                        help=f"{result.tilt_rad!r} rad, major axis from +x toward +y")
     with cols[3]:
-        _ui.big_number("Centroid x / y", f"{_ui.fmt_num(result.centroid_x_m, 1e3, 4)} / "
-                                         f"{_ui.fmt_num(result.centroid_y_m, 1e3, 4)} mm",
+        _ui.big_number("Centroid x / y (mm)", f"{_ui.fmt_num(result.centroid_x_m, 1e3, 3)} / "
+                                              f"{_ui.fmt_num(result.centroid_y_m, 1e3, 3)}",
                        sub=("⚠ " + ", ".join(result.flags)) if result.flags else f"SNR {result.snr:.0f}")
     left, right = st.columns([3, 2])
     with left:
@@ -199,13 +199,13 @@ def wire_scans(root: str, stamp: str, window: _data.Window) -> None:
     prof, result, curve = profile_analysis(root, stamp, profile_id, model)
     cols = st.columns(4)
     with cols[0]:
-        _ui.big_number(f"σ{plane} ({result.model})", _ui.fmt_pm(result.sigma_m, result.sigma_err_m, 1e6, "µm"),
+        _ui.big_pm(f"σ{plane} ({result.model})", result.sigma_m, result.sigma_err_m, 1e6, "µm",
                        help=f"{result.sigma_m!r} m")
     with cols[1]:
-        _ui.big_number("rms (windowed)", _ui.fmt_pm(result.rms_m, result.rms_err_m, 1e6, "µm"),
+        _ui.big_pm("rms (windowed)", result.rms_m, result.rms_err_m, 1e6, "µm",
                        help=f"{result.rms_m!r} m, window ±{result.window_n_sigma:g} rms")
     with cols[2]:
-        _ui.big_number("Centroid", _ui.fmt_pm(result.centroid_m, result.centroid_err_m, 1e3, "mm"))
+        _ui.big_pm("Centroid", result.centroid_m, result.centroid_err_m, 1e3, "mm")
     with cols[3]:
         _ui.big_number("Reduced χ² / SNR", f"{_ui.fmt_num(result.chi2_red, 1, 3)} / {_ui.fmt_num(result.snr, 1, 3)}",
                        sub=("⚠ " + ", ".join(result.flags)) if result.flags else "no flags")

@@ -194,15 +194,14 @@ def main() -> None:
     for col, plane in zip(cols[:2], ("x", "y"), strict=True):
         pr = getattr(result, plane)
         with col:
-            _ui.big_number(f"Emittance {plane} (norm.)",
-                           _ui.fmt_pm(pr.norm_emittance_m_rad, pr.norm_emittance_err_m_rad, 1e6, "mm mrad"),
-                           help=f"{pr.norm_emittance_m_rad!r} ± {pr.norm_emittance_err_m_rad!r} m rad",
+            _ui.big_pm(f"Emittance {plane} (norm.)", pr.norm_emittance_m_rad, pr.norm_emittance_err_m_rad,
+                       1e6, "mm mrad", help=f"{pr.norm_emittance_m_rad!r} ± {pr.norm_emittance_err_m_rad!r} m rad",
                            sub=("⚠ " + ", ".join(pr.flags)) if pr.flags else "no flags")
     for col, plane in zip(cols[2:], ("x", "y"), strict=True):
         pr = getattr(result, plane)
         with col:
-            _ui.big_number(f"β{plane} / α{plane}",
-                           f"{_ui.fmt_num(pr.beta_m, 1, 3)} m / {_ui.fmt_num(pr.alpha, 1, 3)}",
+            _ui.big_number(f"β{plane} (m) / α{plane}",
+                           f"{_ui.fmt_num(pr.beta_m, 1, 3)} / {_ui.fmt_num(pr.alpha, 1, 3)}",
                            sub=f"B_mag {_ui.fmt_num(pr.bmag, 1, 3)}" if pr.bmag is not None else "no design optics")
 
     left, right = st.columns(2)

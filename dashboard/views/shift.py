@@ -65,12 +65,11 @@ def headline(root: str, waiting: bool = False) -> None:
             geo, geo_err = row.get(f"{plane}_emittance_m_rad"), row.get(f"{plane}_emittance_err_m_rad")
             flags = _ui.parse_flags(row.get(f"{plane}_flags")) + _ui.parse_flags(row.get("flags"))
             flags = tuple(dict.fromkeys(flags))
-            _ui.big_number(
-                f"Emittance {plane} (norm.)",
-                _ui.fmt_pm(value, err, _ui.MM_MRAD_PER_M_RAD, "mm mrad"),
+            _ui.big_pm(
+                f"Emittance {plane} (norm.)", value, err, _ui.MM_MRAD_PER_M_RAD, "mm mrad",
                 help=(f"Normalised rms emittance {value!r} m rad ± {err!r}; geometric "
                       f"{_ui.fmt_pm(geo, geo_err, 1e9, 'nm rad')}. Scan {row.get('scan_name')}."),
-                sub=f"{row.get('scan_name', '')} · {_ui.fmt_time(row.get('timestamp'))}"
+                sub=f"{row.get('scan_name', '')} · {_ui.fmt_time(row.get('timestamp'))[11:16]}"
                     + (f" · ⚠ {', '.join(flags)}" if flags else ""),
             )
     answer = _data.orbit_report(root, stamp, window.key, start=not waiting)
@@ -175,10 +174,17 @@ def trends(root: str) -> None:
         _ui.guard(temperatures, root, stamp, window, events, what="Temperatures")
 
 
+def not_in_scans(results: pd.DataFrame) -> pd.DataFrame:
+    """Result rows of routine measurements: scan steps (sizes varied on purpose) left out."""
+    if results.empty or "scan" not in results:
+        return results
+    return results[results["scan"].isna()]
+
+
 def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
     fig = go.Figure()
     n = 0
-    prof = _data.results(root, stamp, "profiles", window.key)
+    prof = not_in_scans(_data.results(root, stamp, "profiles", window.key))
     if not prof.empty and "sigma_m" in prof:
         for (device, plane), grp in prof.groupby(["device", "plane"], sort=True):
             n += len(grp)
@@ -194,6 +200,7 @@ def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame
         frames = pd.DataFrame()
         st.caption(f"Screen sizes not shown: the stored screen results cannot be read "
                    f"({type(exc).__name__}).")
+    frames = not_in_scans(frames)
     if not frames.empty:
         for plane in ("x", "y"):
             col = f"projection_{plane}_sigma_m"
