@@ -287,14 +287,17 @@ def _split(text: str, path: Path, lineno: int) -> list[str]:
 def line_of_row(path: Path, head: CsvHead, row: int) -> int:
     """Physical line of data row ``row`` (0-based); empty lines are skipped as pyarrow does."""
     seen = -1
-    with path.open("rb") as fh:
-        fh.seek(head.header_offset)
-        fh.readline()
-        for lineno, raw in enumerate(fh, start=head.header_line + 1):
-            if raw.rstrip(b"\r\n"):
-                seen += 1
-                if seen == row:
-                    return lineno
+    try:
+        with path.open("rb") as fh:
+            fh.seek(head.header_offset)
+            fh.readline()
+            for lineno, raw in enumerate(fh, start=head.header_line + 1):
+                if raw.rstrip(b"\r\n"):
+                    seen += 1
+                    if seen == row:
+                        return lineno
+    except OSError as exc:
+        raise located(path, f"cannot read file: {exc.strerror or exc}") from None
     return head.header_line + 1 + row
 
 
@@ -397,7 +400,11 @@ def _check_utf8(path: Path, head: CsvHead, chunk: int = 16 << 20) -> None:
 
     decoder = codecs.getincrementaldecoder("utf-8")()
     line = head.header_line
-    with path.open("rb") as fh:
+    try:
+        fh = path.open("rb")
+    except OSError as exc:
+        raise located(path, f"cannot read file: {exc.strerror or exc}") from None
+    with fh:
         fh.seek(head.header_offset)
         while True:
             block = fh.read(chunk)

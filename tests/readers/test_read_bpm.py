@@ -252,3 +252,17 @@ def test_accepted_time_spellings(write, text, iso):
 def test_refused_time_spellings(write, text):
     with pytest.raises(InputError, match=r"line 2: column 'timestamp' has .* \(expected an ISO 8601 time with zone"):
         read_bpm(write("b.csv", HEADER + f'"{text}",BPM-01,1,2\n'))  # quoted: one has a comma
+
+
+def test_file_vanishing_during_the_read_is_an_input_error(write, monkeypatch):
+    """A file removed between the fast read and the diagnosis (e.g. by a cleaner) is reported, not leaked."""
+    path = write("b.csv", HEADER + "2026-11-30T06:00:00Z,BPM-01,bad,2\n")
+    real = _util._diagnose_csv
+
+    def vanish(p, *args):
+        p.unlink()
+        return real(p, *args)
+
+    monkeypatch.setattr(_util, "_diagnose_csv", vanish)
+    with pytest.raises(InputError, match=r"cannot read file"):
+        read_bpm(path)
