@@ -399,6 +399,25 @@ def latest_emittance(scans: pd.DataFrame) -> dict[str, dict[str, Any]]:
     return out
 
 
+def _failed_scans(scans: pd.DataFrame, plane: str, after: pd.Timestamp | None) -> list[str]:
+    """Notes on scans (after ``after``) that gave no value in ``plane``, newest first."""
+    col = f"{plane}_norm_emittance_m_rad"
+    if scans.empty or "timestamp" not in scans.columns:
+        return []
+    rows = scans.sort_values("timestamp", ascending=False)
+    if after is not None:
+        rows = rows[rows["timestamp"] > after]
+    notes = []
+    for _, r in rows.iterrows():
+        if col in rows.columns and _num(r[col]) is not None:
+            continue
+        why = str(r.get(f"{plane}_message") or r.get("message") or "no value")
+        notes.append(
+            f"{r.get('scan_name', 'a scan')} at {_clock(r['timestamp'])} gave no value: {why}"
+        )
+    return notes[:2]
+
+
 def worst_drift(orbit_report: Any) -> Any:
     """The BPM-plane summary with the largest ``max_abs_drift_m`` (None when there is none)."""
     best = None
@@ -866,20 +885,24 @@ def build_report(store: Any, *, start: Any, end: Any, notes: str = "") -> Report
             headlines.append(
                 Headline(
                     f"emittance_{plane}",
-                    f"Latest emittance {plane}",
+                    f"Latest emittance {plane} (normalised)",
                     None,
-                    "no quad scan in this window",
+                    "no quad scan in this window"
+                    if scans.empty
+                    else "no valid value in this window",
+                    "; ".join(_failed_scans(scans, plane, None)),
                 )
             )
             continue
         bmag = f", Bmag {e['bmag']:.3f}" if e["bmag"] is not None else ""
+        later = "".join(f"; {note}" for note in _failed_scans(scans, plane, e["timestamp"]))
         headlines.append(
             Headline(
                 f"emittance_{plane}",
                 f"Latest emittance {plane} (normalised)",
                 e["norm_emittance_m_rad"],
                 _pm(e["norm_emittance_m_rad"], e["norm_emittance_err_m_rad"], _MM_MRAD, "mm mrad"),
-                f"{e['scan_name']} at {_clock(e['timestamp'])} UTC; β {_fmt(e['beta_m'])} m, α {_fmt(e['alpha'])}{bmag}",
+                f"{e['scan_name']} at {_clock(e['timestamp'])} UTC; β {_fmt(e['beta_m'])} m, α {_fmt(e['alpha'])}{bmag}{later}",
                 e["flags"],
             )
         )

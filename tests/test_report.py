@@ -350,3 +350,49 @@ def test_cli_refuses_a_missing_store(tmp_path, capsys):
     code = main(["report", "--store", str(tmp_path / "nope"), "--out", str(tmp_path / "x.html")])
     assert code == 2
     assert "expected an existing store folder" in capsys.readouterr().err
+
+
+class _FakeStore:
+    """The few store reads build_report makes, over fixed tables (no files)."""
+
+    root = "fake-store"
+
+    def __init__(self, scans: pd.DataFrame) -> None:
+        self._scans = scans
+
+    def last_seen(self):
+        return {"scans": self._scans["timestamp"].max()}
+
+    def time_range(self, kind):
+        return None
+
+    def read_results(self, kind, *, start=None, end=None, version="latest"):
+        return self._scans if kind == "scans" else pd.DataFrame()
+
+    def read_bpm(self, *, start=None, end=None):
+        return pd.DataFrame()
+
+    def read_slow(self, *, start=None, end=None):
+        return pd.DataFrame()
+
+
+def test_a_later_failed_scan_is_named_next_to_the_last_good_value():
+    scans = pd.DataFrame(
+        {
+            "timestamp": pd.to_datetime(["2026-11-30T08:15Z", "2026-11-30T12:30Z"]),
+            "scan_name": ["good scan", "bad scan"],
+            "x_norm_emittance_m_rad": [1.2e-6, math.nan],
+            "x_norm_emittance_err_m_rad": [0.01e-6, math.nan],
+            "x_message": ["", "det(sigma) <= 0"],
+            "y_norm_emittance_m_rad": [math.nan, math.nan],
+            "y_message": ["waist not crossed", "det(sigma) <= 0"],
+        }
+    )
+    rep = report.build_report(_FakeStore(scans), start="2026-11-30T06:00Z", end="2026-11-30T14:00Z")
+    x, y = rep.headline("emittance_x"), rep.headline("emittance_y")
+    assert x.value == 1.2e-6 and x.text == "1.200 ± 0.010 mm mrad"
+    assert "bad scan at 12:30:00 gave no value: det(sigma) <= 0" in x.detail
+    assert y.value is None and y.text == "no valid value in this window"
+    assert "good scan at 08:15:00 gave no value: waist not crossed" in y.detail
+    assert rep.headline("worst_drift").text == "no BPM readings in this window"
+    assert rep.problems == ()
