@@ -433,7 +433,8 @@ def fit_gaussian_2d(
     l11 = math.sqrt(sxx)
     l21 = sxy / l11
     l22 = math.sqrt(max(syy - l21 * l21, 1e-6 * syy))
-    fit = least_squares_fit(_g2d_model, _g2d_jac, xy, z, [amp0, xm, ym, l11, l21, l22, bg0])
+    # a spot that needs more than ~200 iterations is not a Gaussian worth the wait
+    fit = least_squares_fit(_g2d_model, _g2d_jac, xy, z, [amp0, xm, ym, l11, l21, l22, bg0], max_nfev=1600)
     if not fit.success:
         return failed(fit.message)
     amp, x0, y0, l11, l21, l22, bg = fit.params
@@ -442,6 +443,8 @@ def fit_gaussian_2d(
     if not (0 <= x0 <= a.shape[1] - 1 and 0 <= y0 <= a.shape[0] - 1):
         return failed("fitted centre lies outside the image")
     cov = fit.covariance
+    if not np.all(np.isfinite(cov)):
+        return failed("parameter covariance is singular")
     # S from the Cholesky factor, and its Jacobian for the errors
     sxx, sxy, syy = l11 * l11, l11 * l21, l21 * l21 + l22 * l22
     jac_s = np.array([[2 * l11, 0, 0], [l21, l11, 0], [0, 2 * l21, 2 * l22]])

@@ -293,6 +293,7 @@ def least_squares_fit(
     weights: np.ndarray | None = None,
     absolute_weights: bool = False,
     bounds: tuple[Sequence[float], Sequence[float]] | None = None,
+    max_nfev: int | None = None,
 ) -> LeastSquaresFit:
     """Weighted nonlinear least squares, the core every profile fit uses.
 
@@ -315,6 +316,8 @@ def least_squares_fit(
     absolute_weights : bool
         If False (default), the covariance is scaled by the reduced chi-square.
     bounds : (lower, upper), optional
+    max_nfev : int, optional
+        Evaluation budget (default 2000 (k + 1) for LM, 500 (k + 1) with bounds).
 
     Returns
     -------
@@ -340,9 +343,9 @@ def least_squares_fit(
     try:
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             if bounds is None:
-                sol = optimize.least_squares(fun, p0, jac=jac, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=2000 * (k + 1))
+                sol = optimize.least_squares(fun, p0, jac=jac, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=max_nfev or 2000 * (k + 1))
             else:
-                sol = optimize.least_squares(fun, p0, jac=jac, method="trf", bounds=bounds, x_scale="jac", xtol=1e-14, ftol=1e-14, gtol=1e-14, max_nfev=500 * (k + 1))
+                sol = optimize.least_squares(fun, p0, jac=jac, method="trf", bounds=bounds, x_scale="jac", xtol=1e-14, ftol=1e-14, gtol=1e-14, max_nfev=max_nfev or 500 * (k + 1))
     except (ValueError, np.linalg.LinAlgError) as exc:
         nan = np.full(k, np.nan)
         return LeastSquaresFit(nan, np.full((k, k), np.nan), nan, math.nan, dof, math.nan, False, f"optimiser error: {exc}", 0)

@@ -307,3 +307,23 @@ def test_input_errors_name_the_field():
         I.analyze_image(img, pixel_size_m=1e-5, method="fancy")
     with pytest.raises(InputError, match="2D image"):
         I.analyze_image(np.zeros(100), pixel_size_m=1e-5)
+
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+from hypothesis.extra.numpy import arrays  # noqa: E402
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    img=arrays(np.uint16, st.tuples(st.integers(8, 40), st.integers(8, 40)), elements=st.integers(0, 65535)),
+    bit_depth=st.sampled_from([None, 16]),
+)
+def test_any_image_gives_a_result_with_known_flags(img, bit_depth):
+    """Whatever pixels come in, analyze_image returns a result whose flags are all in FLAGS (no exception, no warning)."""
+    r = I.analyze_image(img, pixel_size_m=1e-5, bit_depth=bit_depth, fit_2d=True)
+    assert set(r.flags) <= set(FLAGS)
+    if math.isfinite(r.sigma_x_m):
+        assert r.sigma_x_m > 0 and r.sigma_y_m > 0
+        x0, y0, x1, y1 = r.roi
+        assert 0 <= x0 < x1 <= img.shape[1] and 0 <= y0 < y1 <= img.shape[0]

@@ -458,3 +458,30 @@ def test_input_errors_are_one_line_and_name_the_field():
         P.analyze_profile(x, np.ones(10), baseline="cubic")
     with pytest.raises(InputError, match="finite"):
         P.analyze_profile(x, np.r_[np.ones(9), np.nan])
+
+
+# ---------------------------------------------------------------------------
+# Robustness: any finite input gives a flagged result or InputError
+# ---------------------------------------------------------------------------
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+from hypothesis.extra.numpy import arrays  # noqa: E402
+
+_finite = st.floats(min_value=-1e6, max_value=1e6, allow_nan=False, allow_infinity=False)
+
+
+@settings(max_examples=30, deadline=None)
+@given(y=arrays(np.float64, st.integers(3, 60), elements=_finite), model=st.sampled_from(P.PROFILE_MODELS))
+def test_any_finite_profile_gives_a_result_with_known_flags(y, model):
+    """Whatever finite signal comes in, analyze_profile returns a result whose flags are all in FLAGS (no exception, no warning)."""
+    x = np.linspace(-1e-3, 1e-3, y.size)
+    res = P.analyze_profile(x, y, model=model)
+    assert set(res.flags) <= set(FLAGS)
+    assert res.n_points == y.size
+    if "fit_failed" in res.flags:
+        assert math.isnan(res.sigma_m) and res.message
+    else:
+        assert res.sigma_m > 0
+    batch = P.fit_profiles_batch(x, y[None, :])[0]
+    assert set(batch.flags) <= set(FLAGS)
