@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import re
 import sys
 from collections.abc import Sequence
 
@@ -33,6 +34,16 @@ COMMANDS = (
 )
 
 
+_ROLE = re.compile(r":(?:func|meth|class|mod|attr|data):`~?([^`]+)`")
+
+
+def _plain(text: str | None) -> str | None:
+    """Docstring markup (``:func:`x```, double back-quotes) as plain text for ``--help``."""
+    if not text:
+        return text
+    return _ROLE.sub(r"\1", text).replace("``", "'")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="beamdiag",
@@ -49,6 +60,9 @@ def build_parser() -> argparse.ArgumentParser:
                 raise
             continue  # not built yet
         module.register(subparsers)
+    for sub in subparsers.choices.values():
+        sub.description = _plain(sub.description)
+        sub.epilog = _plain(sub.epilog)
     return parser
 
 
