@@ -464,10 +464,19 @@ def _is_sorted(table: pa.Table, time_key: str, name_key: str) -> bool:
     step = np.diff(ts)
     if (step < 0).any():
         return False
-    ties = np.flatnonzero(step == 0)
-    if ties.size == 0:
+    tie = step == 0
+    if not tie.any():
         return True
     names = table.column(name_key)
+    if pa.types.is_dictionary(names.type) and names.num_chunks:
+        # compare ranks in the (unified) dictionary instead of the strings
+        values = names.chunk(0).dictionary.to_numpy(zero_copy_only=False)
+        rank = np.empty(len(values), np.int32)
+        rank[np.argsort(values, kind="stable")] = np.arange(len(values), dtype=np.int32)
+        r = rank[np.concatenate([c.indices.to_numpy(zero_copy_only=False)
+                                 for c in names.chunks])]
+        return not bool((tie & (r[1:] < r[:-1])).any())
+    ties = np.flatnonzero(tie)
     before, after = names.take(pa.array(ties)), names.take(pa.array(ties + 1))
     return bool(pc.all(pc.less_equal(before, after)).as_py())
 
@@ -1429,9 +1438,11 @@ class Store:
 
     def _read_table(self, kind: str, *, start: Any = None, end: Any = None,
                     filter: ds.Expression | None = None,
-                    columns: Sequence[str] | None = None) -> pa.Table:
+                    columns: Sequence[str] | None = None,
+                    dictionary: Sequence[str] = ()) -> pa.Table:
         """Read the live files of ``kind`` in ``[start, end)``, retrying if compaction
-        removed a file between the snapshot and the read."""
+        removed a file between the snapshot and the read.  Text columns named in
+        ``dictionary`` are read dictionary-encoded (as Parquet stores them)."""
         t0, t1 = _window(start, end)
         for _attempt in range(8):
             rows = self._snapshot(kind, t0, t1)
@@ -1452,8 +1463,18 @@ class Store:
                 empty = schema.empty_table()
                 return empty if columns is None else empty.select(list(columns))
             paths = [str(self.root / r["path"]) for r in rows]
+            fmt: Any = "parquet"
+            dictionary = [c for c in dictionary if schema.get_field_index(c) >= 0
+                          and pa.types.is_string(schema.field(c).type)]
+            if dictionary:
+                for c in dictionary:
+                    i = schema.get_field_index(c)
+                    schema = schema.set(i, schema.field(i).with_type(
+                        pa.dictionary(pa.int32(), pa.string())))
+                fmt = ds.ParquetFileFormat(
+                    read_options=ds.ParquetReadOptions(dictionary_columns=dictionary))
             try:
-                dataset = ds.dataset(paths, schema=schema, format="parquet")
+                dataset = ds.dataset(paths, schema=schema, format=fmt)
                 return dataset.to_table(columns=list(columns) if columns is not None else None,
                                         filter=expr)
             except OSError:
@@ -1496,7 +1517,7 @@ class Store:
         cols = None if columns is None else ["timestamp", "bpm"] + [
             c for c in columns if c not in ("timestamp", "bpm")]
         table = self._read_table("bpm", start=start, end=end, columns=cols,
-                                 filter=self._device_filter("bpm", bpms))
+                                 filter=self._device_filter("bpm", bpms), dictionary=["bpm"])
         return self._readings_frame(table, ["timestamp", "bpm"])
 
     def read_slow(self, *, start: Any = None, end: Any = None,
@@ -1504,16 +1525,23 @@ class Store:
         """Slow-channel readings in ``[start, end)``, sorted by timestamp, channel."""
         channels = _as_list(channels, "channels")
         table = self._read_table("slow", start=start, end=end,
-                                 filter=self._device_filter("channel", channels))
+                                 filter=self._device_filter("channel", channels),
+                                 dictionary=["channel", "unit"])
         return self._readings_frame(table, ["timestamp", "channel"])
 
     @staticmethod
     def _readings_frame(table: pa.Table, keys: list[str]) -> pd.DataFrame:
-        if table.num_rows > 1 and not _is_sorted(table, keys[0], keys[1]):
+        table = table.unify_dictionaries()
+        sorted_ = table.num_rows < 2 or _is_sorted(table, keys[0], keys[1])
+        for i, f in enumerate(table.schema):  # text as text, not categories
+            if pa.types.is_dictionary(f.type):
+                table = table.set_column(i, f.with_type(pa.string()),
+                                         table.column(i).cast(pa.string()))
+        if not sorted_:
             table = table.sort_by([(k, "ascending") for k in keys])
         df = table.to_pandas()
         for name in df.columns:
-            if pa.types.is_timestamp(table.schema.field(name).type):
+            if pa.types.is_timestamp(table.schema.field(name).type) and df[name].dt.unit != "ns":
                 df[name] = df[name].dt.as_unit("ns")
         return df
 
@@ -1545,7 +1573,7 @@ class Store:
     def _index_frame(table: pa.Table) -> pd.DataFrame:
         table = table.drop_columns([c for c in _INTERNAL_COLUMNS if c in table.column_names])
         df = table.to_pandas()
-        if "timestamp" in df:
+        if "timestamp" in df and df["timestamp"].dt.unit != "ns":
             df["timestamp"] = df["timestamp"].dt.as_unit("ns")
         if "step" in df:
             df["step"] = df["step"].astype("Int64")
