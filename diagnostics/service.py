@@ -348,6 +348,7 @@ class WatchService:
         self._housekeeping = ThreadPoolExecutor(max_workers=1, thread_name_prefix="housekeeping")
         self._job: Future | None = None
         self._stats_lock = threading.Lock()
+        self._old_handlers: dict[int, Any] = {}
 
     def _hold_catalog(self) -> sqlite3.Connection | None:
         """Keep one idle connection to the store's catalog open while the service runs.
@@ -422,9 +423,12 @@ class WatchService:
         return self._stop.is_set()
 
     def install_signal_handlers(self) -> None:
-        """SIGTERM and SIGINT finish the current input, then stop cleanly."""
-        signal.signal(signal.SIGTERM, self.stop)
-        signal.signal(signal.SIGINT, self.stop)
+        """SIGTERM and SIGINT finish the current input, then stop cleanly.
+
+        The previous handlers come back when :meth:`run` returns.
+        """
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            self._old_handlers[sig] = signal.signal(sig, self.stop)
 
     def _start_events(self) -> None:
         try:
@@ -1004,6 +1008,8 @@ class WatchService:
                 self._observer.stop()
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._housekeeping.shutdown(wait=True)  # a compaction in progress finishes
+            for sig, handler in self._old_handlers.items():
+                signal.signal(sig, handler)
             if self._catalog_hold is not None:
                 self._catalog_hold.close()
             with contextlib.suppress(OSError):

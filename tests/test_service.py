@@ -739,3 +739,29 @@ def test_an_input_whose_analysis_fails_is_finished_without_stopping_the_batch(tm
     assert len(store.frame_index()) == 3
     assert len(store.read_results("frames")) == 2
     assert svc.stats.errors == 1 and "simulated analysis bug" in svc.stats.last_error
+
+
+def test_cli_once_handles_what_is_ready_and_exits(tmp_path, capsys):
+    """``beamdiag watch INBOX --store DIR --once`` (in process; signal handlers restored)."""
+    from diagnostics.cli import main
+    from diagnostics.store import Store
+
+    inbox = tmp_path / "inbox"
+    before = signal.getsignal(signal.SIGINT)
+    _put_renamed(inbox, "once.csv", bpm_csv(0, np.random.default_rng(0)))
+    rc = main(["watch", str(inbox), "--store", str(tmp_path / "store"), "--once", "--orbit-every", "0",
+               "--compact-every", "0"])
+    assert rc == 0
+    assert (inbox / "done" / "once.csv").exists()
+    assert len(Store(tmp_path / "store").read_bpm()) == 24
+    assert signal.getsignal(signal.SIGINT) is before
+    assert "stopped: 1 input(s) processed, 1 stored" in capsys.readouterr().err
+
+
+def test_cli_rejects_a_bad_option_with_one_line(tmp_path, capsys):
+    from diagnostics.cli import main
+
+    rc = main(["watch", str(tmp_path / "in"), "--store", str(tmp_path / "s"), "--orbit-interval", "soon", "--once"])
+    assert rc == 2
+    err = capsys.readouterr().err.strip()
+    assert "--orbit-interval" in err and len(err.splitlines()) == 1
