@@ -379,7 +379,7 @@ class BatchLMResult:
 
 
 def levenberg_marquardt_batch(
-    residual_and_jacobian: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray]],
+    normal_equations: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray]],
     p0: np.ndarray,
     *,
     max_iter: int = 200,
@@ -390,18 +390,20 @@ def levenberg_marquardt_batch(
     """Levenberg-Marquardt over many independent problems at once, in numpy.
 
     Every problem keeps its own damping ``lambda`` (Marquardt's scaling by
-    ``diag(J^T J)``; D. W. Marquardt, J. SIAM 11, 431 (1963)); the normal
+    ``diag(J^T J)``; D. W. Marquardt, J. SIAM 11, 431 (1963)); the damped normal
     equations of all still-active problems are solved together with a stacked
-    :func:`numpy.linalg.solve`, and a problem leaves the active set once its step
-    or its cost reduction falls below the tolerance.
+    :func:`numpy.linalg.solve`, and a problem leaves the active set once its
+    Newton decrement or its step falls below the tolerance.  Only the normal
+    equations are kept between iterations, never the Jacobians.
 
     Parameters
     ----------
-    residual_and_jacobian : callable ``f(params, rows) -> (r, J)``
-        For the problems ``rows`` (int index array) and their ``params``
-        (``(len(rows), k)``), the weighted residuals ``(len(rows), m)`` and the
-        transposed Jacobian ``(len(rows), k, m)`` (parameter-major, so that its
-        rows are contiguous).
+    normal_equations : callable ``f(params, rows) -> (cost, JtJ, Jtr)``
+        For the problems ``rows`` (int index array) at ``params``
+        (``(len(rows), k)``): the sum of squared (weighted) residuals
+        ``(len(rows),)``, ``J^T J`` ``(len(rows), k, k)`` and ``J^T r``
+        ``(len(rows), k)``.  :func:`normal_equations_from_jacobian` builds them
+        from residuals and a Jacobian.
     p0 : ndarray, shape (n_problems, k)
     max_iter : int
     xtol : float
@@ -411,11 +413,11 @@ def levenberg_marquardt_batch(
         undamped Gauss-Newton step could still remove) is below ``ftol * cost``;
         that last step is then taken without evaluating it, which leaves an error
         of second order in it (the parameters then sit within about
-        ``ftol * dof`` standard errors of the optimum).
+        ``sqrt(ftol * dof)`` standard errors of the optimum before it).
     initial_damping : float
         Starting ``lambda``.  The cautious default 1 (a step about half the
         Gauss-Newton one) keeps far starts from sliding into a flat region, as
-        NIST's Eckerle4 start 1 otherwise does; with good start values 1e-2
+        NIST's Eckerle4 start 1 otherwise does; with good start values 1e-4
         saves an iteration or two.
 
     Returns
@@ -424,78 +426,78 @@ def levenberg_marquardt_batch(
     """
     p = np.array(p0, dtype=float, copy=True)
     n, k = p.shape
-    rows = np.arange(n)
-    r, jac = residual_and_jacobian(p, rows)
-    cost = np.einsum("ij,ij->i", r, r)
+    with np.errstate(over="ignore", invalid="ignore"):
+        cost, jtj_all, g_all = normal_equations(p, np.arange(n))
+    cost = np.array(cost, dtype=float, copy=True)
     lam = np.full(n, float(initial_damping))
     converged = np.zeros(n, dtype=bool)
-    jtj_out = np.full((n, k, k), np.nan)
     n_eval = 1
-    active = np.isfinite(cost)
+    active = np.isfinite(cost) & np.all(np.isfinite(jtj_all), axis=(1, 2))
     eye = np.eye(k)
     for _ in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        jt, ra = (jac, r) if idx.size == n else (jac[idx], r[idx])
-        jtj = np.matmul(jt, jt.transpose(0, 2, 1))
-        g = np.matmul(jt, ra[:, :, None])[:, :, 0]
-        # Newton decrement g^T (J^T J)^-1 g: the most an undamped step could still
-        # gain; below ftol * cost the problem is solved and needs no evaluation
+        jtj, g = (jtj_all, g_all) if idx.size == n else (jtj_all[idx], g_all[idx])
+        # one stacked solve: the undamped (Gauss-Newton) step and the damped one
+        diag = np.maximum(np.diagonal(jtj, axis1=1, axis2=2), 1e-300)
+        a = jtj + lam[idx, None, None] * diag[:, :, None] * eye
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
             try:
-                dec = np.einsum("ij,ij->i", g, np.linalg.solve(jtj, g[:, :, None])[:, :, 0])
+                both = np.linalg.solve(np.concatenate([jtj, a]), np.concatenate([g, g])[:, :, None])[:, :, 0]
             except np.linalg.LinAlgError:
-                dec = np.full(idx.size, np.inf)
+                both = np.concatenate([
+                    np.stack([np.linalg.lstsq(ai, gi, rcond=None)[0] for ai, gi in zip(jtj, g, strict=True)]),
+                    np.stack([np.linalg.lstsq(ai, gi, rcond=None)[0] for ai, gi in zip(a, g, strict=True)]),
+                ])
+            d_gn, step = both[: idx.size], -both[idx.size :]
+            # Newton decrement g^T (J^T J)^-1 g: the most an undamped step could still
+            # gain; below ftol * cost the problem is solved and needs no evaluation
+            dec = np.einsum("ij,ij->i", g, d_gn)
         solved = np.isfinite(dec) & (dec <= ftol * cost[idx])
         if solved.any():
             # take the final undamped step without evaluating it (its gain is below
             # ftol * cost; the remaining error is second order in it)
             rows_s = idx[solved]
-            p[rows_s] -= np.linalg.solve(jtj[solved], g[solved][:, :, None])[:, :, 0]
-            jtj_out[rows_s] = jtj[solved]
+            p[rows_s] -= d_gn[solved]
             converged[rows_s] = True
             active[rows_s] = False
         keep = ~solved
         if not keep.any():
             break
         if not keep.all():
-            idx, jtj, g = idx[keep], jtj[keep], g[keep]
-        diag = np.maximum(np.diagonal(jtj, axis1=1, axis2=2), 1e-300)
-        a = jtj + lam[idx, None, None] * diag[:, :, None] * eye
-        try:
-            step = -np.linalg.solve(a, g[:, :, None])[:, :, 0]
-        except np.linalg.LinAlgError:
-            step = np.stack([-np.linalg.lstsq(ai, gi, rcond=None)[0] for ai, gi in zip(a, g, strict=True)])
+            idx, step = idx[keep], step[keep]
         p_new = p[idx] + step
         with np.errstate(over="ignore", invalid="ignore"):
-            r_new, j_new = residual_and_jacobian(p_new, idx)
-            cost_new = np.einsum("ij,ij->i", r_new, r_new)
+            cost_new, jtj_new, g_new = normal_equations(p_new, idx)
         n_eval += 1
-        better = np.isfinite(cost_new) & (cost_new <= cost[idx])
+        better = np.isfinite(cost_new) & (cost_new <= cost[idx]) & np.all(np.isfinite(jtj_new), axis=(1, 2))
         small_step = np.all(np.abs(step) <= xtol * (np.abs(p[idx]) + xtol), axis=1)
         acc = idx[better]
         if acc.size == n:
-            p, r, jac = p_new, r_new, j_new
+            p, cost, jtj_all, g_all = p_new, np.array(cost_new, dtype=float), jtj_new, g_new
         else:
-            p[acc], r[acc], jac[acc] = p_new[better], r_new[better], j_new[better]
-        # an accepted or rejected step that is already negligibly small ends the search
-        done = small_step
-        cost[acc] = cost_new[better]
+            p[acc], cost[acc], jtj_all[acc], g_all[acc] = p_new[better], cost_new[better], jtj_new[better], g_new[better]
         lam[acc] = np.maximum(lam[acc] / 10.0, 1e-15)
         rej = idx[~better]
         lam[rej] *= 10.0
+        # an accepted or rejected step that is already negligibly small ends the search
         stuck = rej[lam[rej] > 1e16]
-        converged[idx[done]] = True
-        active[idx[done]] = False
+        converged[idx[small_step]] = True
+        active[idx[small_step]] = False
         active[stuck] = False
         converged[stuck] = True  # no further descent possible: a (local) minimum
-    # J^T J where it was not kept at convergence (step or damping exit, max_iter)
-    miss = np.flatnonzero(np.isnan(jtj_out[:, 0, 0]))
-    if miss.size:
-        jm = jac[miss]
-        jtj_out[miss] = np.matmul(jm, jm.transpose(0, 2, 1))
-    return BatchLMResult(p, converged, cost, jtj_out, n_eval)
+    return BatchLMResult(p, converged, cost, jtj_all, n_eval)
+
+
+def normal_equations_from_jacobian(residual: np.ndarray, jacobian_t: np.ndarray):
+    """``(cost, J^T J, J^T r)`` from residuals ``(n, m)`` and a transposed Jacobian ``(n, k, m)``."""
+    return (
+        np.einsum("ij,ij->i", residual, residual),
+        np.matmul(jacobian_t, jacobian_t.transpose(0, 2, 1)),
+        np.matmul(jacobian_t, residual[:, :, None])[:, :, 0],
+    )
+
 
 
 # ---------------------------------------------------------------------------
@@ -630,57 +632,6 @@ def start_values(t: np.ndarray, y: np.ndarray, *, baseline: str = "linear") -> n
     return p[0] if np.ndim(y) == 1 else p
 
 
-def refine_start(t: np.ndarray, y: np.ndarray, p: np.ndarray, *, fraction: float = 0.2) -> np.ndarray:
-    """Improve Gaussian start values with a weighted parabola fit to ln(signal).
-
-    On the points standing above ``fraction`` of the amplitude over the start
-    baseline, ``ln(y - b) = a0 + a1 t + a2 t^2`` is fitted with weights
-    ``(y - b)^2`` (R. A. Caruana, R. B. Searle, T. Heller & S. I. Shupack, Anal.
-    Chem. 58, 1162 (1986); the weighting of H. Guo, IEEE Signal Process. Mag. 28,
-    134 (2011)), giving ``mu = -a1 / (2 a2)``, ``sigma^2 = -1 / (2 a2)`` and the
-    amplitude.  Rows where the parabola does not open downwards keep ``p``.
-
-    Parameters
-    ----------
-    t, y : ndarray, shape (n_profiles, n_points)
-    p : ndarray, shape (n_profiles, k)
-        Start values from :func:`start_values` (their baseline is kept).
-    """
-    t2, y2 = np.atleast_2d(t), np.atleast_2d(y)
-    t2 = np.broadcast_to(t2, y2.shape)
-    p2 = np.array(np.atleast_2d(p), dtype=float, copy=True)
-    base = p2[:, 3:4] + (p2[:, 4:5] * t2 if p2.shape[1] == 5 else 0.0)
-    yb = y2 - base
-    use = yb > fraction * p2[:, 0:1]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        w = np.where(use, yb * yb, 0.0)
-        ly = np.where(use, np.log(np.where(use, yb, 1.0)), 0.0)
-        tc = t2 - p2[:, 1:2]  # centred on the first guess for conditioning
-        tc2 = tc * tc
-        s0, s1, s2 = w.sum(1), (w * tc).sum(1), (w * tc2).sum(1)
-        s3, s4 = (w * tc2 * tc).sum(1), (w * tc2 * tc2).sum(1)
-        r0, r1, r2 = (w * ly).sum(1), (w * ly * tc).sum(1), (w * ly * tc2).sum(1)
-        a = np.stack([np.stack([s0, s1, s2], -1), np.stack([s1, s2, s3], -1), np.stack([s2, s3, s4], -1)], 1)
-        rhs = np.stack([r0, r1, r2], -1)
-        good = use.sum(1) >= 3
-        det = np.linalg.det(a)
-        good &= np.isfinite(det) & (np.abs(det) > 1e-300)
-        coef = np.zeros((len(y2), 3))
-        if good.any():
-            coef[good] = np.linalg.solve(a[good], rhs[good][:, :, None])[:, :, 0]
-        c2 = coef[:, 2]
-        good &= c2 < 0
-        sig = np.sqrt(-0.5 / np.where(good, c2, -1.0))
-        dmu = -coef[:, 1] / (2 * np.where(good, c2, -1.0))
-        amp = np.exp(coef[:, 0] - coef[:, 1] ** 2 / (4 * np.where(good, c2, -1.0)))
-        # keep only sane refinements: centre moved by less than the first sigma, width within x3
-        good &= np.isfinite(sig) & np.isfinite(amp) & (np.abs(dmu) < p2[:, 2]) & (sig < 3 * p2[:, 2]) & (sig > p2[:, 2] / 3)
-    p2[good, 0] = amp[good]
-    p2[good, 1] = p2[good, 1] + dmu[good]
-    p2[good, 2] = sig[good]
-    return p2[0] if np.ndim(y) == 1 else p2
-
-
 def _physical_rows(x, x_ref, h, s, p_int, cov_int, chi2, resid_rms, dof, ok, message, n_base):
     """Map scaled-coordinate Gaussian solutions back to metres and signal units, row by row.
 
@@ -805,7 +756,7 @@ def fit_gaussian(
     x_ref, h, s = _scales(x, y)
     t = (x - x_ref) / h
     if p0 is None:
-        p_start = refine_start(t, y / s, start_values(t, y / s, baseline=baseline))
+        p_start = start_values(t, y / s, baseline=baseline)
     else:
         q = np.asarray(p0, dtype=float)
         if q.size != k:
@@ -1485,28 +1436,43 @@ def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int) -> BatchGaus
     x_ref, h, s = _scales(x, y)
     t = (x - x_ref[:, None]) / h[:, None]
     yn = y / s[:, None]
-    p0 = refine_start(t, yn, start_values(t, yn, baseline=BASELINES[n_base - 1]))
+    p0 = start_values(t, yn, baseline=BASELINES[n_base - 1])
 
-    def resjac(p, rows):
+    # constant blocks of J^T J: the baseline columns 1 and t do not depend on p
+    sum_t, sum_t2 = t.sum(1), (t * t).sum(1)
+    iu = np.triu_indices(k, 1)
+
+    def normal_eq(p, rows):
+        """Cost, J^T J and J^T r of the Gaussian + baseline model, using its structure."""
         tt, yy = (t, yn) if len(rows) == n else (t[rows], yn[rows])
         inv_s = 1.0 / p[:, 2:3]
         z = (tt - p[:, 1:2]) * inv_s
-        g = np.exp(-0.5 * z * z)
-        ag = p[:, 0:1] * g
-        # Jacobian stored parameter-major (n, k, m) for contiguous fills and products
-        jt = np.empty((len(rows), k, tt.shape[1]))
-        jt[:, 0] = g
-        np.multiply(ag * z, inv_s, out=jt[:, 1])
-        np.multiply(jt[:, 1], z, out=jt[:, 2])
-        jt[:, 3] = 1.0
-        f = ag + p[:, 3:4]
+        gj = np.empty((len(rows), 3, m))  # the three Gaussian Jacobian rows
+        np.exp(-0.5 * z * z, out=gj[:, 0])
+        ag = p[:, 0:1] * gj[:, 0]
+        np.multiply(ag * z, inv_s, out=gj[:, 1])
+        np.multiply(gj[:, 1], z, out=gj[:, 2])
+        r = ag + p[:, 3:4]
         if n_base == 2:
-            f += p[:, 4:5] * tt
-            jt[:, 4] = tt
-        f -= yy
-        return f, jt
+            r += p[:, 4:5] * tt
+        r -= yy
+        jtj = np.empty((len(rows), k, k))
+        jtj[:, :3, :3] = np.matmul(gj, gj.transpose(0, 2, 1))
+        jtj[:, :3, 3] = gj.sum(axis=2)
+        jtj[:, 3, 3] = m
+        grad = np.empty((len(rows), k))
+        grad[:, :3] = np.matmul(gj, r[:, :, None])[:, :, 0]
+        grad[:, 3] = r.sum(1)
+        if n_base == 2:
+            jtj[:, :3, 4] = np.matmul(gj, tt[:, :, None])[:, :, 0]
+            jtj[:, 3, 4] = sum_t[rows]
+            jtj[:, 4, 4] = sum_t2[rows]
+            grad[:, 4] = np.einsum("ij,ij->i", tt, r)
+        # mirror the upper triangle
+        jtj[:, iu[1], iu[0]] = jtj[:, iu[0], iu[1]]
+        return np.einsum("ij,ij->i", r, r), jtj, grad
 
-    lm = levenberg_marquardt_batch(resjac, p0, initial_damping=1e-4, ftol=1e-11)
+    lm = levenberg_marquardt_batch(normal_eq, p0, initial_damping=1e-4, ftol=1e-11)
     p, conv, cost, jtj = lm.params, lm.converged, lm.cost, lm.jtj
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         try:

@@ -111,12 +111,12 @@ def test_batch_levenberg_marquardt_matches_nist_strd_certified_values(name, mode
     """NIST StRD (as above) solved by the vectorised batch LM, both starts as one batch."""
     s1, s2, cert, sd, x, y = read_nist(name)
 
-    def resjac(p, rows):
+    def normal_eq(p, rows):
         r = np.stack([model(x, q) - y for q in p])
         j = np.stack([jac(x, q).T for q in p])  # parameter-major (k, m) per problem
-        return r, j
+        return P.normal_equations_from_jacobian(r, j)
 
-    lm = P.levenberg_marquardt_batch(resjac, np.stack([s1, s2]))
+    lm = P.levenberg_marquardt_batch(normal_eq, np.stack([s1, s2]))
     assert lm.converged.all()
     for q, c, jtj in zip(lm.params, lm.cost, lm.jtj, strict=True):
         np.testing.assert_allclose(q, cert, rtol=1e-6)
