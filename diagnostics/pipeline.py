@@ -125,7 +125,7 @@ class AnalysisOptions:
         return json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
 
     @classmethod
-    def from_mapping(cls, mapping: Mapping[str, Any] | None) -> AnalysisOptions:
+    def from_mapping(cls, mapping: AnalysisOptions | Mapping[str, Any] | None) -> AnalysisOptions:
         """Build options from a mapping (e.g. parsed JSON); unknown keys raise InputError."""
         if mapping is None:
             return cls()
@@ -310,9 +310,9 @@ def scan_record(scan_id: str | None, spec: Any, result: Any, *, provisional: boo
     return record
 
 
-def failed_record(key: str, key_value: str, *, reason: str, **extra: Any) -> dict[str, Any]:
+def failed_record(key: str, key_value: str | None, *, reason: str, **extra: Any) -> dict[str, Any]:
     """A row for a raw item the analysis could not handle: flagged ``fit_failed`` with the reason."""
-    record = {key: key_value}
+    record: dict[str, Any] = {key: key_value}
     record.update({k: _clean(v) for k, v in extra.items()})
     record["flags"] = ["fit_failed"]
     record["message"] = reason
@@ -349,7 +349,7 @@ def analyze_profile_items(items: Sequence[tuple[str, Any, Mapping[str, Any]]],
                 results = profiles.fit_profiles_batch(positions, signals, baseline=options.baseline,
                                                       window_n_sigma=options.window_n_sigma)
             except (ValueError, FloatingPointError, np.linalg.LinAlgError, RuntimeError) as exc:
-                results = [None] * len(idx)
+                results = [None] * len(idx)  # type: ignore[list-item]
                 reason = f"batch fit raised {type(exc).__name__}: {exc}"
             for i, res in zip(idx, results, strict=True):
                 pid, prof, extra = items[i]
@@ -632,7 +632,7 @@ def _bpm_summaries(report: Any) -> list[Any]:
         if value is None:
             continue
         if isinstance(value, Mapping):
-            out = []
+            out: list[Any] = []
             for item in value.values():
                 if isinstance(item, Mapping):
                     out.extend(item.values())
@@ -765,7 +765,7 @@ def ingested_items(store: Any, kind: str, outcomes: Sequence[Any]) -> list[tuple
     rows_of: dict[str, list[tuple[str, Any, Any]]] = {}
     for row in index[["sha256", "id", "scan", "step"]].itertuples(index=False):
         rows_of.setdefault(row.sha256, []).append((str(row.id), row.scan, row.step))
-    items = []
+    items: list[tuple[str, Any, dict[str, Any]]] = []
     for sha, objs in objects.items():
         rows = rows_of.get(sha, [])
         if len(rows) != len(objs):

@@ -256,8 +256,8 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
     def flush(final: bool = False) -> None:
         # write finished tasks in task order, in chunks, so a long run streams to disk
         nonlocal next_to_write, pending_write
-        while next_to_write < len(results) and results[next_to_write] is not None:
-            pending_write.extend(results[next_to_write])
+        while next_to_write < len(results) and (done := results[next_to_write]) is not None:
+            pending_write.extend(done)
             next_to_write += 1
         if write and pending_write and (final or len(pending_write) >= WRITE_CHUNK_ROWS):
             path = store.write_results(kind, pending_write, options=options.to_dict(), version=version)

@@ -333,7 +333,7 @@ class WatchService:
         self._pending = 0
         self._last_cycle_s = 0.0
         self._backlog = False
-        self._observer = None
+        self._observer: Any = None
         state = self._load_state()
         self._last_orbit_wall = state.get("last_orbit")
         self._last_compact_wall = state.get("last_compact")
