@@ -833,10 +833,12 @@ def window_moments(
     xr = 0.5 * (x[:, :1] + x[:, -1:])
     xc = x - xr  # centred, to keep the prefix-sum variance free of cancellation
     wy = w * y
-    zero = np.zeros((len(y), 1))
-    c0 = np.concatenate([zero, np.cumsum(wy, axis=1)], axis=1)
-    c1 = np.concatenate([zero, np.cumsum(wy * xc, axis=1)], axis=1)
-    c2 = np.concatenate([zero, np.cumsum(wy * xc * xc, axis=1)], axis=1)
+    # prefix sums of w y, w y x, w y x^2 with a leading zero: cum[:, i, j] = sum over points < j
+    cum = np.zeros((3, len(y), y.shape[1] + 1))
+    np.cumsum(wy, axis=1, out=cum[0, :, 1:])
+    np.cumsum(wy * xc, axis=1, out=cum[1, :, 1:])
+    np.cumsum(wy * xc * xc, axis=1, out=cum[2, :, 1:])
+    ar = np.arange(len(y))
     mu = mu - xr[:, 0]
     ok = np.isfinite(mu) & np.isfinite(sig) & (sig > 0)
     lo = np.zeros(len(y), dtype=np.int64)
@@ -860,10 +862,7 @@ def window_moments(
             hist_lo.append(lo)
             hist_hi.append(hi)
             lo, hi = new_lo, new_hi
-            li, hi_ = lo[:, None], hi[:, None]
-            s0 = (np.take_along_axis(c0, hi_, 1) - np.take_along_axis(c0, li, 1))[:, 0]
-            s1 = (np.take_along_axis(c1, hi_, 1) - np.take_along_axis(c1, li, 1))[:, 0]
-            s2 = (np.take_along_axis(c2, hi_, 1) - np.take_along_axis(c2, li, 1))[:, 0]
+            s0, s1, s2 = cum[:, ar, hi] - cum[:, ar, lo]
             m = s1 / s0
             var = s2 / s0 - m * m
             good = (s0 > 0) & (var > 0)
@@ -1113,16 +1112,23 @@ def _assemble_rows(
         "amplitude": sh["amplitude"], "amplitude_err": sh["amplitude_err"], "baseline": base_c, "baseline_slope_per_m": sh["slope"],
         "chi2_red": sh["chi2_red"], "snr": snr,
     }
-    fitted = ("centroid_m", "centroid_err_m", "sigma_m", "sigma_err_m", "fwhm_m", "amplitude", "amplitude_err", "baseline", "baseline_slope_per_m", "chi2_red")
-    lists = {k: np.asarray(v, dtype=float).tolist() for k, v in cols.items()}
+    names = list(cols)
+    fitted = [names.index(k) for k in ("centroid_m", "centroid_err_m", "sigma_m", "sigma_err_m", "fwhm_m", "amplitude",
+                                       "amplitude_err", "baseline", "baseline_slope_per_m", "chi2_red")]
+    i_fwhm = names.index("fwhm_m")
+    rows_vals = list(zip(*(np.asarray(v, dtype=float).tolist() for v in cols.values()), strict=True))
     g_sigma = np.where(g_ok, g["sigma"], nan).tolist()
-    flag_any = too_few | ~ok | low | near_end | no_base | non_g | ~np.isfinite(rms_w)
+    flag_any = (too_few | ~ok | low | near_end | no_base | non_g | ~np.isfinite(rms_w)).tolist()
+    extra_keys = ("s1", "s2", "halo_fraction", "halo_fraction_err", "p", "p_err", "w")
+    no_extras = (nan,) * len(extra_keys)
+    wn = float(window_n_sigma)
     out = []
     for i in range(n):
-        vals = {k: lists[k][i] for k in lists}
+        vals = rows_vals[i]
         flags: tuple[str, ...] = ()
         message = ""
         extras = sh["extras"][i]
+        ext = tuple(float(extras.get(k, nan)) for k in extra_keys) if extras else no_extras
         if flag_any[i]:
             fl: list[str] = []
             notes: list[str] = []
@@ -1131,9 +1137,10 @@ def _assemble_rows(
             if not ok[i]:
                 fl.append("fit_failed")
                 notes.append(f"fit failed: {sh['message'][i]}")
-                for k in fitted:
-                    vals[k] = nan
-                vals["fwhm_m"] = _fwhm_from_data(x[i], yb[i])
+                vals = list(vals)
+                for j in fitted:
+                    vals[j] = nan
+                vals[i_fwhm] = _fwhm_from_data(x[i], yb[i])
             if low[i]:
                 fl.append("low_signal")
                 notes.append(f"signal-to-noise {snr[i]:.3g} below {snr_min:g}")
@@ -1151,24 +1158,8 @@ def _assemble_rows(
                 notes.append(f"non-Gaussian: Gaussian sigma {g['sigma'][i]:.4g} m vs rms {rms_c[i]:.4g} m")
             flags = merge_flags(fl)
             message = "; ".join(notes)
-        out.append(
-            ProfileResult(
-                **vals,
-                n_points=m,
-                model=model,
-                flags=flags,
-                message=message,
-                window_n_sigma=float(window_n_sigma),
-                core_sigma_m=float(extras.get("s1", nan)),
-                halo_sigma_m=float(extras.get("s2", nan)),
-                halo_fraction=float(extras.get("halo_fraction", nan)),
-                halo_fraction_err=float(extras.get("halo_fraction_err", nan)),
-                order=float(extras.get("p", nan)),
-                order_err=float(extras.get("p_err", nan)),
-                width_m=float(extras.get("w", nan)),
-                gaussian_sigma_m=g_sigma[i],
-            )
-        )
+        # positional, in the field order of ProfileResult
+        out.append(ProfileResult(*vals, m, model, flags, message, wn, *ext, g_sigma[i]))
     return out
 
 
