@@ -846,7 +846,12 @@ def _records_table(records: Sequence[Mapping[str, Any]] | pd.DataFrame, what: st
             arr = pa.array(values, pa.string())
             unit = "JSON"
         elif key == "timestamp" or key.endswith("_time"):
-            stamps = pd.to_datetime(pd.Series(values, dtype=object), utc=True, format="ISO8601")
+            try:
+                stamps = pd.to_datetime(pd.Series(values, dtype=object), utc=True,
+                                        format="ISO8601")
+            except (TypeError, ValueError) as exc:
+                raise InputError(f"{what}: field {key!r} holds a value that is not an ISO 8601 "
+                                 f"time: {exc}") from exc
             arr = pa.array(stamps.dt.as_unit("ns"), _TS)
             unit = "UTC"
         else:

@@ -21,6 +21,8 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from PIL import Image
 
 from diagnostics.cli import main
@@ -382,3 +384,33 @@ def test_sigkill_mid_batch_then_rerun_completes_without_duplicates(tmp_path):
         (expected_rows,)]
     assert con.execute("SELECT count(*) FROM (SELECT DISTINCT timestamp, bpm FROM "
                        "read_parquet(?))", [glob]).fetchall() == [(expected_rows,)]
+
+
+# ------------------------------------------------------------------ whatever comes in
+@pytest.fixture(scope="module")
+def fuzz_store(tmp_path_factory):
+    return Store(tmp_path_factory.mktemp("fuzz") / "store"), tmp_path_factory.mktemp("fuzz_in")
+
+
+@settings(max_examples=40, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(data=st.binary(max_size=400), suffix=st.sampled_from([".csv", ".png", ".npy", ".parquet",
+                                                             ".tif", ".txt"]),
+       header=st.sampled_from([b"", b"timestamp,bpm,x_mm,y_mm\n", b"# plane: x\n",
+                               b"\x89PNG\r\n\x1a\n", b"\x93NUMPY", b"PAR1"]))
+def test_ingest_stores_or_quarantines_whatever_bytes_come_in(fuzz_store, data, suffix, header):
+    """Property: ingest never raises for bad input; a file is stored, a duplicate, or
+    quarantined with a one-line reason and a copy."""
+    store, folder = fuzz_store
+    name = hashlib.sha256(header + data + suffix.encode()).hexdigest()[:12] + suffix
+    path = folder / name
+    path.write_bytes(header + data)
+    if suffix in (".png", ".npy", ".tif"):
+        path.with_suffix(".json").write_text(json.dumps(sidecar()))
+    out = store.ingest(path)
+    assert out.status in ("stored", "duplicate", "quarantined")
+    if out.status == "quarantined":
+        assert out.message and "\n" not in out.message
+        q = store.quarantine_list()
+        (copy,) = q.loc[q.sha256 == out.sha256, "quarantine_path"]
+        assert (store.root / copy).exists()
