@@ -113,7 +113,7 @@ def test_batch_and_single_fitter_agree_on_noisy_profiles():
 def test_profiles_of_different_lengths_are_batched_separately():
     items = [("a", gaussian_profile(2e-4, 0.0, n=101), {}), ("b", gaussian_profile(3e-4, 0.0, n=157), {}),
              ("c", gaussian_profile(1.5e-4, 0.0, n=101), {})]
-    records = pipeline.analyze_profile_items(items, AnalysisOptions(fitter="batch"))
+    records = pipeline.analyze_profile_items(items, AnalysisOptions(fitter="auto"))
     assert [r["profile_id"] for r in records] == ["a", "b", "c"]
     assert [r["sigma_m"] for r in records] == pytest.approx([2e-4, 3e-4, 1.5e-4], rel=1e-6)
 
