@@ -1143,7 +1143,7 @@ def generate_raw(
     >>> with tempfile.TemporaryDirectory() as tmp:
     ...     m = generate_raw(tmp, start="10:40", hours=0.05, sources=("bpm",))
     ...     m.n_bpm_readings
-    72000
+    43200
     """
     unknown = sorted(set(sources) - set(SOURCES))
     if unknown:
