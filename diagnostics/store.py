@@ -1321,15 +1321,20 @@ class Store:
         files = {"parts": parts}
         tb = None
         kind = readers.detect_kind(path) or kind
+        outputs: list[Path] | None = None
         try:
             kind, data = readers.read_any(path)
-            outputs, rows = self._write_data(kind, data, sha, shown)
         except InputError as exc:
             reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         except Exception as exc:  # a reader bug must not stop a batch; keep its traceback
             reason = f"{shown}: unexpected {type(exc).__name__}: {exc}".splitlines()[0]
             tb = traceback.format_exc()
         else:
+            try:  # data the store refuses is bad input too; a failing disk is not
+                outputs, rows = self._write_data(kind, data, sha, shown)
+            except InputError as exc:
+                reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        if outputs is not None:
             rel = tuple(str(p.relative_to(self.root)) for p in outputs)
             with self._catalog.connect() as con:
                 self._catalog.record_ingest(con, kind=kind, status="stored", rows=rows,

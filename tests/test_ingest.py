@@ -278,6 +278,28 @@ def test_images_read_back_bit_identical_after_ingest(tmp_path, kind):
     assert back.pixels.astype(pixels.dtype).tobytes() == pixels.tobytes()
 
 
+def test_a_failing_store_disk_stops_ingest_instead_of_quarantining(tmp_path, monkeypatch, capsys):
+    import errno
+
+    import diagnostics._storeio as storeio
+    import diagnostics.store as store_mod
+
+    write_bpm_csv(tmp_path / "in" / "a.csv")
+
+    def full(*args, **kwargs):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(store_mod, "atomic_write_table", full)
+    assert storeio.atomic_write_table is not full
+    store = Store(tmp_path / "store")
+    with pytest.raises(OSError, match="No space left"):
+        store.ingest(tmp_path / "in" / "a.csv")
+    assert store.quarantine_list().empty and store.ingest_log().empty
+    assert main(["ingest", str(tmp_path / "in"), "--store", str(tmp_path / "store")]) == 2
+    err = capsys.readouterr().err
+    assert "cannot write to the store" in err and "Traceback" not in err
+
+
 def test_missing_path_is_reported_not_raised(tmp_path):
     store = Store(tmp_path / "store")
     out = store.ingest(tmp_path / "nope.csv")

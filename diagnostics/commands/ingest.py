@@ -31,10 +31,14 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    from diagnostics.errors import StoreError
     from diagnostics.store import Store
 
     store = Store(args.store)
-    summary = store.ingest_many(args.paths)
+    try:
+        summary = store.ingest_many(args.paths)
+    except OSError as exc:  # the store's disk, not an input, failed: stop with one line
+        raise StoreError(f"{store.root}: cannot write to the store: {exc}") from exc
     if args.json:
         for o in summary.outcomes:
             record = {"file": o.path, "kind": o.kind, "status": o.status, "sha256": o.sha256,
