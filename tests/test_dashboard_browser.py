@@ -56,7 +56,7 @@ def store(tmp_path_factory) -> Path:
     from diagnostics.demo import build_demo_store
 
     root = tmp_path_factory.mktemp("browser") / "store"
-    build_demo_store(root, start="08:10", hours=0.5)  # holds the 08:15 quad scan
+    build_demo_store(root, start="08:10", hours=0.75)  # holds the 08:15 quad scan
     return root
 
 

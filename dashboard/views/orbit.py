@@ -54,7 +54,7 @@ def heatmap(report, plane: str) -> go.Figure:
     tr = report.trends
     z = (tr.drift_x_m if plane == "x" else tr.drift_y_m).T * _ui.UM_PER_M
     lim = float(np.nanmax(np.abs(z))) if np.isfinite(z).any() else 1.0
-    fig = go.Figure(go.Heatmap(z=z, x=tr.times, y=list(tr.bpms), colorscale="RdBu_r", zmid=0.0,
+    fig = go.Figure(go.Heatmap(z=z, x=_ui.times(tr.times), y=list(tr.bpms), colorscale="RdBu_r", zmid=0.0,
                                zmin=-lim, zmax=lim, colorbar=dict(title="µm"),
                                hovertemplate="%{y} %{x}<br>%{z:.1f} µm<extra></extra>"))
     fig.update_yaxes(autorange="reversed", title="BPM (beam direction ↓)")
@@ -86,7 +86,7 @@ def trace(root: str, stamp: str, window: _data.Window, report, bpm: str, plane: 
                                for s in steps], columns=["time", "kind", "label"])
         _ui.mark_events(fig, events)
         for s in steps:
-            fig.add_annotation(x=_data.utc(s.time).to_pydatetime(), y=1.0, yref="paper", showarrow=False,
+            fig.add_annotation(x=_ui.times([s.time])[0], y=1.0, yref="paper", showarrow=False,
                                text=f"step {s.size_m * _ui.UM_PER_M:+.1f} ± {s.size_err_m * _ui.UM_PER_M:.1f} µm",
                                font=dict(color="#d62728"), yanchor="bottom")
     _ui.base_layout(fig, title=f"{bpm} {plane}: drift ({bucket} buckets, min/max band)", height=360,

@@ -22,7 +22,9 @@ LIVE_TRENDS_S = 60
 #: How often the page looks for an orbit analysis that is still running, seconds.
 POLL_S = 2
 #: Largest number of buckets in the drift plot (24 BPMs x 2 planes of lines).
-DRIFT_POINTS = 600
+DRIFT_POINTS = 360
+#: Largest number of buckets per temperature channel.
+TEMPERATURE_POINTS = 500
 
 #: Raw kinds shown under "last data", with operator names.
 SOURCES = {"bpm": "BPMs", "slow": "Slow channels", "profiles": "Wire scans", "frames": "Screens",
@@ -189,7 +191,7 @@ def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame
         for (device, plane), grp in prof.groupby(["device", "plane"], sort=True):
             n += len(grp)
             fig.add_trace(go.Scatter(
-                x=pd.to_datetime(grp["timestamp"], utc=True), y=grp["sigma_m"] * _ui.UM_PER_M,
+                x=_ui.times(grp["timestamp"]), y=grp["sigma_m"] * _ui.UM_PER_M,
                 error_y=dict(array=grp.get("sigma_err_m", pd.Series(np.nan, index=grp.index)) * _ui.UM_PER_M,
                              visible=True, thickness=1),
                 mode="markers+lines", name=f"{device} {plane}", marker=dict(size=6),
@@ -209,7 +211,7 @@ def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame
             for device, grp in frames.groupby("device", sort=True):
                 n += len(grp)
                 fig.add_trace(go.Scatter(
-                    x=pd.to_datetime(grp["timestamp"], utc=True), y=grp[col] * _ui.UM_PER_M,
+                    x=_ui.times(grp["timestamp"]), y=grp[col] * _ui.UM_PER_M,
                     mode="markers", marker=dict(size=4, symbol="diamond"), name=f"{device} {plane}",
                     hovertemplate="%{y:.1f} µm<extra>" + f"{device} {plane}</extra>"))
     st.subheader("Beam sizes")
@@ -228,7 +230,7 @@ def emittance_trend(root: str, stamp: str, window: _data.Window, events: pd.Data
         st.caption("No quad-scan results in the window.")
         return
     fig = go.Figure()
-    t = pd.to_datetime(res["timestamp"], utc=True)
+    t = _ui.times(res["timestamp"])
     for plane, colour in (("x", "#1f77b4"), ("y", "#d62728")):
         err = res.get(f"{plane}_norm_emittance_err_m_rad")
         fig.add_trace(go.Scatter(
@@ -239,7 +241,7 @@ def emittance_trend(root: str, stamp: str, window: _data.Window, events: pd.Data
             hovertemplate="%{y:.3f} mm mrad<br>%{text}<extra>" + f"{plane}</extra>"))
     _ui.mark_events(fig, events)
     _ui.base_layout(fig, y_title="normalised emittance (mm mrad)", height=340)
-    fig.update_xaxes(range=[window.start, window.end])
+    fig.update_xaxes(range=list(_ui.times([window.start, window.end])))
     _ui.plot(fig, key="shift_emittance")
 
 
@@ -263,14 +265,19 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
         highlight = (worst.bpm, worst.plane)
     fig = make_subplots(rows=2, cols=1, shared_xaxes=True, vertical_spacing=0.08,
                         subplot_titles=("horizontal x", "vertical y"))
+    t = _ui.times(times)
     for r, (plane, values) in enumerate((("x", dx), ("y", dy)), start=1):
-        for j, bpm in enumerate(bpms):
-            if highlight == (bpm, plane):
-                continue
-            fig.add_trace(go.Scatter(
-                x=times, y=values[:, j] * _ui.UM_PER_M, mode="lines", name=bpm, legendgroup=bpm,
-                showlegend=False, line=dict(width=0.8), opacity=0.5,
-                hovertemplate="%{y:.1f} µm<extra>" + f"{bpm} {plane}</extra>"), row=r, col=1)
+        # all BPMs of a plane as one trace, separated by gaps: one trace is far cheaper than 24
+        cols = [j for j, bpm in enumerate(bpms) if highlight != (bpm, plane)]
+        # (a NaN after each BPM's series breaks the line before the next one starts)
+        xs = np.tile(np.concatenate([t, t[-1:]]), len(cols))
+        ys = np.concatenate([np.append(values[:, j] * _ui.UM_PER_M, np.nan) for j in cols]) if cols else xs[:0]
+        names = np.repeat([bpms[j] for j in cols], t.size + 1)
+        fig.add_trace(go.Scatter(x=xs, y=ys, customdata=names, mode="lines",
+                                 name=f"BPMs {plane}", showlegend=False, connectgaps=False,
+                                 line=dict(width=0.8, color="#5b7fa6"), opacity=0.55,
+                                 hovertemplate="%{y:.1f} µm<extra>%{customdata} " + plane + "</extra>"),
+                      row=r, col=1)
     if highlight is not None:
         bpm, plane = highlight
         j = bpms.index(bpm)
@@ -302,7 +309,8 @@ def temperatures(root: str, stamp: str, window: _data.Window, events: pd.DataFra
     if not temps:
         st.caption("No temperature channels in the window.")
         return
-    tr = _data.trend(root, stamp, "slow", ("value",), window.key, _data.bucket_for(window.duration_s), temps)
+    tr = _data.trend(root, stamp, "slow", ("value",), window.key,
+                     _data.bucket_for(window.duration_s, max_points=TEMPERATURE_POINTS), temps)
     fig = go.Figure()
     for ch, grp in tr.groupby("device", sort=True):
         _ui.add_envelope(fig, grp["timestamp"], grp["value_mean"], grp["value_min"], grp["value_max"],
