@@ -1003,7 +1003,10 @@ class Store:
         if not catalog.exists() and (read_only or not create):
             raise StoreError(f"{self.root}: no beamdiag store here (catalog.sqlite is missing)")
         if not read_only:
-            self.root.mkdir(parents=True, exist_ok=True)
+            try:
+                self.root.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise StoreError(f"{self.root}: cannot create the store: {exc}") from exc
         self._catalog = Catalog(catalog, read_only=read_only)
 
     def __repr__(self) -> str:
@@ -1824,7 +1827,8 @@ class Store:
         The sandbox follows ECOSYSTEM.md section 3, in this order:
         ``allowed_directories = [store]``, ``enable_external_access = false``,
         ``lock_configuration = true``.  Views ``bpm``, ``slow``, ``profiles``,
-        ``frames``, ``scans`` and ``results_<kind>`` read the files that are live
+        ``frames``, ``scans``, ``rollup_bpm``, ``rollup_slow`` (10-s partial
+        aggregates, see :func:`rollup_table`) and ``results_<kind>`` read the files that are live
         *now* (a snapshot of the catalog, read with ``union_by_name``; superseded
         scan versions are left out).  Call :meth:`duckdb` again for newer data:
         it is cheap.  Bind values as parameters: ``con.execute(sql, [value])``.
@@ -1839,6 +1843,8 @@ class Store:
         current = self._current_scan_versions()
         for kind in STORE_KINDS:
             self._create_view(con, kind, kind, current)
+        for kind, rollup in ROLLUP_KINDS.items():
+            self._create_view(con, f"rollup_{kind}", rollup, {})
         for kind in self.result_kinds():
             self._create_view(con, f"results_{kind}", f"results/{kind}", {})
         return con

@@ -497,3 +497,18 @@ def test_read_bpm_is_sorted_whatever_the_write_order(store):
     expected = pd.concat([early, late]).sort_values(["timestamp", "bpm"]).reset_index(drop=True)
     pd.testing.assert_frame_equal(got, expected, check_dtype=False)
     assert got["bpm"].iloc[:2].tolist() == ["BPM-02", "BPM-09"]
+
+
+def test_rollup_views_and_progress_line(store, capsys, tmp_path):
+    store.write_bpm(bpm_frame(200), sha256="ab" * 32, source="a.csv")
+    con = store.duckdb()
+    assert con.execute("SELECT sum(x_m__n) FROM rollup_bpm").fetchall() == [(600,)]
+    assert con.execute("SELECT count(*) FROM rollup_slow").fetchall() == [(0,)]
+    (tmp_path / "notes.csv").write_text("nothing useful\n")
+    summary = store.ingest_many([tmp_path / "notes.csv"], progress=True)
+    err = capsys.readouterr().err
+    assert err.startswith("\ringest 1/1: ") and err.endswith("\n")
+    assert summary.line() == "stored 0 (0 rows), duplicate 0, quarantined 1"
+    (tmp_path / "a_file").write_text("")
+    with pytest.raises(StoreError, match="cannot create the store"):
+        Store(tmp_path / "a_file" / "store")
