@@ -190,6 +190,11 @@ class Report:
     generated: pd.Timestamp | None = None
     code_version: str = __version__
 
+    @property
+    def title(self) -> str:
+        """``Shift handover <start> – <end> UTC``, the page title."""
+        return f"Shift handover {_clock(self.start, date=True)} – {_clock(self.end, date=True)} UTC"
+
     def headline(self, key: str) -> Headline:
         """The headline with ``key``."""
         for item in self.headlines:

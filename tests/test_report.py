@@ -98,6 +98,7 @@ def test_report_has_no_left_out_sections(built):
     rep, _ = built
     assert rep.problems == ()
     assert not rep.empty
+    assert rep.title == "Shift handover 2026-11-30 08:00:00 – 2026-11-30 11:45:00 UTC"
 
 
 def test_emittance_headline_is_the_latest_stored_scan_result(filled, built):
