@@ -1238,9 +1238,7 @@ def render_html(report: Report) -> str:
     """
     from plotly.offline import get_plotlyjs
 
-    title = (
-        f"Shift handover {_clock(report.start, date=True)} – {_clock(report.end, date=True)} UTC"
-    )
+    title = report.title
     out = [
         "<!DOCTYPE html>",
         '<html lang="en"><head><meta charset="utf-8">',
