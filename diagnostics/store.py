@@ -57,6 +57,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import hashlib
 import json
 import os
 import re
@@ -1249,7 +1250,9 @@ class Store:
         sink = pa.BufferOutputStream()
         with pa.ipc.new_stream(sink, table.schema) as w:
             w.write_table(table)
-        content = text_sha256(sink.getvalue().to_pybytes().hex(), options_text)[:16]
+        digest = hashlib.sha256(memoryview(sink.getvalue()))
+        digest.update(options_text.encode())
+        content = digest.hexdigest()[:16]
         now = pd.Timestamp.now(tz="UTC")
         extra = {
             "result_version": pa.array([version] * n, pa.string()),
