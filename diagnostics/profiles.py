@@ -1411,7 +1411,7 @@ def fit_gaussians_batch(position_m, signals, *, baseline: str = "linear") -> Bat
 
 #: Profiles per chunk in the batch routines: small enough that the working
 #: arrays (chunk x points x parameters) stay in the CPU cache.
-BATCH_CHUNK = 64
+BATCH_CHUNK = 128
 
 
 def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int) -> BatchGaussianFit:
