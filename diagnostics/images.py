@@ -572,11 +572,15 @@ def analyze_image(
         raise InputError(f"pixels: expected a 2D image of at least 8x8 pixels, got shape {raw_all.shape}")
     if not (np.issubdtype(raw_all.dtype, np.integer) or np.issubdtype(raw_all.dtype, np.floating)):
         raise InputError(f"pixels: expected integer or float values, got dtype {raw_all.dtype}")
+    if np.issubdtype(raw_all.dtype, np.floating) and not np.isfinite(raw_all).all():
+        raise InputError(f"pixels: expected finite values, found {np.count_nonzero(~np.isfinite(raw_all))} NaN or inf")
     dark_all = None
     if dark is not None:
         dark_all = np.asarray(dark)
         if dark_all.shape != raw_all.shape:
             raise InputError(f"dark: expected the image's shape {raw_all.shape}, got {dark_all.shape}")
+        if np.issubdtype(dark_all.dtype, np.floating) and not np.isfinite(dark_all).all():
+            raise InputError(f"dark: expected finite values, found {np.count_nonzero(~np.isfinite(dark_all))} NaN or inf")
     if bit_depth is not None and not (isinstance(bit_depth, (int, np.integer)) and 1 <= bit_depth <= 32):
         raise InputError(f"bit_depth: expected an integer from 1 to 32, got {bit_depth!r}")
     n = float(window_n_sigma)
@@ -660,8 +664,10 @@ def analyze_image(
             img = sub - np.float32(bgv)
         w_img = img[win[1] - crop[1]:win[3] - crop[1], win[0] - crop[0]:win[2] - crop[0]]
         tot, mx_, my_, sxx, syy, sxy = image_moments(w_img, x0=win[0], y0=win[1])
-        if not (tot > 0 and sxx > 0 and syy > 0):
+        if not tot > 0:
             return _nan_result(_abs_roi(win, region), ("fit_failed",), "no positive intensity inside the moment window", method, n, bgv, noise)
+        if not (sxx > 0 and syy > 0):
+            return _nan_result(_abs_roi(win, region), ("fit_failed",), "the spot has no width in x or y (a single pixel or line)", method, n, bgv, noise)
         new = window_of(mx_, my_, math.sqrt(sxx), math.sqrt(syy))
         if new == win:
             converged = True

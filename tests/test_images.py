@@ -307,6 +307,10 @@ def test_input_errors_name_the_field():
         I.analyze_image(img, pixel_size_m=1e-5, method="fancy")
     with pytest.raises(InputError, match="2D image"):
         I.analyze_image(np.zeros(100), pixel_size_m=1e-5)
+    bad = np.zeros((20, 20))
+    bad[3, 4] = np.nan
+    with pytest.raises(InputError, match="pixels: expected finite values, found 1 NaN"):
+        I.analyze_image(bad, pixel_size_m=1e-5)
 
 
 from hypothesis import given, settings  # noqa: E402
