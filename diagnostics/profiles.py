@@ -28,8 +28,9 @@ The rms and its noise cut
 -------------------------
 ``rms_m`` is model-free: the fitted baseline is subtracted (no clipping of
 negative values), then the centroid and rms are computed from the points with
-``|x - mu| <= n * rms`` and the window is iterated until the set of points stops
-changing (``n = window_n_sigma``, default 4).  Points are weighted by their local
+``|x - mu| <= n * rms`` and the window is iterated, starting from the fitted
+centre and sigma, until the set of points stops changing or repeats an earlier
+set (at most 20 steps; ``n = window_n_sigma``, default 4).  Points are weighted by their local
 spacing, so uneven scans give the integral moments.  For a pure Gaussian a
 window at ``+-n sigma_true`` gives ``rms / sigma = window_rms_factor(n)``
 (METHODS.md section 3.2: 0.879626 at n = 2, 0.986578 at 3, 0.999465 at 4); because
@@ -57,6 +58,18 @@ Quality flags (names from :data:`diagnostics.results.FLAGS`)
     standard errors.
 ``too_few_points``
     fewer points than the model needs (parameters + 2).
+
+Fitting
+-------
+Every fit runs on a scaled copy of the problem (positions mapped to [-1, 1],
+signal divided by its range) from model-free start values
+(:func:`start_values`).  Single profiles use MINPACK's Levenberg-Marquardt with
+an analytic Jacobian (:func:`least_squares_fit`); many profiles at once use a
+vectorised Levenberg-Marquardt in numpy (:func:`levenberg_marquardt_batch`,
+:func:`fit_gaussians_batch`, :func:`fit_profiles_batch`), which reaches the same
+optimum (sigma to ~1e-8 relative in the benchmark).  Parameter covariances are
+``(J^T W J)^-1``, scaled by the reduced chi-square unless the weights are
+absolute.
 """
 
 from __future__ import annotations
