@@ -20,7 +20,13 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p = subparsers.add_parser(
         "ingest",
         help="store measurement files (profiles, images, BPM, slow channels, scans)",
-        description=__doc__.split("\n\n", 1)[1] if __doc__ else None,
+        description=(
+            "Store measurement files in a beamdiag store. Folders are read recursively; a folder"
+            " with scan.json is one scan; an image's JSON sidecar and the dark frame it names go"
+            " with the image. Files stored before (same bytes) are skipped as duplicates; files"
+            " that cannot be read are copied to STORE/quarantine/ with the reason, and the"
+            " originals are never moved or changed. Exit status 1 when anything was quarantined"
+            " (after storing all the good files)."),
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("paths", nargs="+", metavar="PATH", help="files or folders (recursive)")
