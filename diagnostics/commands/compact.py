@@ -21,7 +21,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             "Merge the small Parquet files of each store partition (kind and date) into one"
             " file. Readers using the store never see a reading twice or half while this runs;"
             " queries over merged partitions are several times faster."),
-        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("--store", required=True, metavar="DIR", help="the store folder")
     p.add_argument("--kind", action="append", metavar="KIND", dest="kinds",

@@ -27,7 +27,6 @@ def register(subparsers: argparse._SubParsersAction) -> None:
             " that cannot be read are copied to STORE/quarantine/ with the reason, and the"
             " originals are never moved or changed. Exit status 1 when anything was quarantined"
             " (after storing all the good files)."),
-        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("paths", nargs="+", metavar="PATH", help="files or folders (recursive)")
     p.add_argument("--store", required=True, metavar="DIR", help="the store folder (created if missing)")
