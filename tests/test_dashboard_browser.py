@@ -167,9 +167,10 @@ def test_window_change_updates_the_shift_page_quickly(server, browser):
         page.get_by_test_id("stSelectbox").first.click()
         page.get_by_role("option", name="Last 30 min").click()
         page.wait_for_function(
-            "(before) => [...document.querySelectorAll('[data-testid=\"stCaptionContainer\"]')]"
-            ".some(e => e.innerText.includes('Showing:') && e.innerText !== before)", arg=before,
-            timeout=30_000)
+            """(b) => [...document.querySelectorAll('[data-testid="stCaptionContainer"]')]
+                .some(e => e.innerText.includes('Showing:') && e.innerText !== b)
+              && document.querySelectorAll('[data-stale="true"]').length === 0""", arg=before,
+            timeout=60_000)
         change_s = time.perf_counter() - t0
         wait_headline(page)
         settled_s = time.perf_counter() - t0
