@@ -189,3 +189,21 @@ def test_scans_are_reanalysed_one_task_each(tmp_path):
     assert summary.n_tasks == 1 and len(records) == 1
     assert records[0]["x_emittance_m_rad"] == pytest.approx(eps["x"], rel=1e-6)
     assert len(store.read_results("scans", version=summary.version)) == 1
+
+
+@pytest.mark.slow
+def test_identity_holds_for_tasks_large_enough_for_a_threaded_blas(tmp_path):
+    """With 1,000-profile tasks the batch fitter's linear algebra is big enough for a
+    multi-threaded BLAS to change the summation order; the tasks pin BLAS to one thread,
+    so the serial run in this process and the two-worker cluster still agree exactly."""
+    from diagnostics.store import Store
+
+    store = Store(tmp_path / "store")
+    for k in range(2):
+        profs, _ = make_profiles(1000, seed=20 + k, t0=T0 + pd.Timedelta(10 * k, "h"), n_points=200)
+        store.write_profiles(profs, sha256=f"{k + 1:x}" * 64, source=f"big{k}")
+    _s, serial = reanalysis.reanalyze(store, kind="profiles", serial=True, write=False, progress=False)
+    summary, clustered = reanalysis.reanalyze(store, kind="profiles", workers=2, write=False, progress=False)
+    assert summary.n_tasks == len(store.live_files("profiles")) >= 2 and len(serial) == 2000
+    differ = sum(1 for a, b in zip(clustered, serial, strict=True) if a != b)
+    assert differ == 0, f"{differ} of {len(serial)} rows differ"
