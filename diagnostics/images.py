@@ -145,7 +145,9 @@ class ImageResult:
     snr : float
         ``peak`` over the background noise rms.
     projection_x, projection_y : ProfileResult or None
-        Profile analysis of the window's projections (``projections=True``).
+        Profile analysis of the window's projections (``projections=True``), as
+        fitted: their sizes still include the pixel pitch^2 / 12 (``method="projections"``
+        removes it from the headline sizes).
     gauss2d : Gaussian2DResult or None
         The rotated 2D fit (``fit_2d=True`` or ``method="gauss2d"``).
     flags, message
