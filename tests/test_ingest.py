@@ -406,6 +406,12 @@ def test_sigkill_mid_batch_then_rerun_completes_without_duplicates(tmp_path):
         (expected_rows,)]
     assert con.execute("SELECT count(*) FROM (SELECT DISTINCT timestamp, bpm FROM "
                        "read_parquet(?))", [glob]).fetchall() == [(expected_rows,)]
+    everything = str(store_dir / "**" / "*.parquet")  # every file of the store opens
+    assert con.execute("SELECT count(*) > 0 FROM read_parquet(?, union_by_name = true)",
+                       [everything]).fetchall() == [(True,)]
+    import pyarrow.dataset as ds
+
+    assert ds.dataset(store_dir / "bpm", partitioning="hive").count_rows() == expected_rows
 
 
 # ------------------------------------------------------------------ whatever comes in
