@@ -16,6 +16,7 @@ not timed (a warm-up task runs first).  Run:  .venv/bin/python bench/bench_reana
 from __future__ import annotations
 
 import logging
+import os
 import sys
 import tempfile
 import time
@@ -92,8 +93,10 @@ def main() -> int:
                 assert recs == records, "cluster records differ from the serial run"
             print(f"LocalCluster {n} worker(s): {walls[n]:.2f} s = {N_PROFILES / walls[n]:,.0f} profiles/s "
                   f"(records identical to serial)")
-        print(f"speed-up 2 workers / 1 worker = {walls[1] / walls[2]:.2f}x (target >= 1.6x; "
-              f"2 cores shared with other work, so provisional)")
+        load = os.getloadavg()[0]
+        print(f"speed-up 2 workers / 1 worker = {walls[1] / walls[2]:.2f}x (target >= 1.6x); load average "
+              f"{load:.1f} on {os.cpu_count()} cores" + ("  <- the machine is busy: rerun when quiet"
+                                                       if load > 0.5 * (os.cpu_count() or 1) else ""))
 
         t = time.perf_counter()
         path_count = len(store.write_results("profiles", records, options=pipeline.AnalysisOptions().to_dict(),
