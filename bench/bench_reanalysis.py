@@ -58,6 +58,7 @@ def main() -> int:
 
     from diagnostics import pipeline, profiles, reanalysis
 
+    load_at_start = os.getloadavg()[0]  # other work on the machine, before ours starts
     with tempfile.TemporaryDirectory() as tmp:
         t = time.perf_counter()
         store = build_store(Path(tmp) / "store")
@@ -93,10 +94,10 @@ def main() -> int:
                 assert recs == records, "cluster records differ from the serial run"
             print(f"LocalCluster {n} worker(s): {walls[n]:.2f} s = {N_PROFILES / walls[n]:,.0f} profiles/s "
                   f"(records identical to serial)")
-        load = os.getloadavg()[0]
+        busy = load_at_start > 0.5 * (os.cpu_count() or 1)
         print(f"speed-up 2 workers / 1 worker = {walls[1] / walls[2]:.2f}x (target >= 1.6x); load average "
-              f"{load:.1f} on {os.cpu_count()} cores" + ("  <- the machine is busy: rerun when quiet"
-                                                       if load > 0.5 * (os.cpu_count() or 1) else ""))
+              f"{load_at_start:.1f} on {os.cpu_count()} cores before the run"
+              + ("  <- the machine was busy: rerun when quiet" if busy else ""))
 
         t = time.perf_counter()
         path_count = len(store.write_results("profiles", records, options=pipeline.AnalysisOptions().to_dict(),
