@@ -321,6 +321,14 @@ class CompactSummary:
 
 
 # --------------------------------------------------------------------------- helpers
+def _utc_required(value: Any, what: str) -> pd.Timestamp:
+    """Like :func:`_utc` for a time that must be given."""
+    ts = _utc(value, what)
+    if ts is None:
+        raise InputError(f"{what}: a time is required (expected ISO 8601)")
+    return ts
+
+
 def _utc(value: Any, what: str) -> pd.Timestamp | None:
     """``value`` as a UTC :class:`pandas.Timestamp` (naive = UTC); ``None`` stays ``None``."""
     if value is None:
@@ -602,8 +610,8 @@ def _input_identity(path: Path, readers: Any) -> tuple[str, int, int, list[dict[
     if len(parts) == 1:
         return own, st.st_size, st.st_mtime_ns, parts
     sha = text_sha256("image", *(f"{p['role']}:{p['sha256']}" for p in parts))
-    size = sum(Path(p["path"]).stat().st_size for p in parts)
-    mtime = max(Path(p["path"]).stat().st_mtime_ns for p in parts)
+    size = sum(int(Path(str(p["path"])).stat().st_size) for p in parts)
+    mtime = max(int(Path(str(p["path"])).stat().st_mtime_ns) for p in parts)
     return sha, size, mtime, parts
 
 
@@ -651,7 +659,7 @@ def _profiles_table(
         if pos.ndim != 1 or pos.shape != sig.shape:
             raise InputError(f"{what}: position_m {pos.shape} and signal {sig.shape} must be "
                              "1-D and of equal length")
-        ts = _utc(p.timestamp, f"{what}: timestamp")
+        ts = _utc_required(p.timestamp, f"{what}: timestamp")
         cols["id"].append(ids[i])
         cols["device"].append(str(p.device))
         cols["plane"].append(str(p.plane))
@@ -703,7 +711,7 @@ def _frames_table(
         px = tuple(float(v) for v in np.broadcast_to(np.asarray(fr.pixel_size_m, float), (2,)))
         cols["id"].append(ids[i])
         cols["device"].append(str(fr.device))
-        cols["timestamp"].append(_ns(_utc(fr.timestamp, f"{what}: timestamp")))
+        cols["timestamp"].append(_ns(_utc_required(fr.timestamp, f"{what}: timestamp")))
         cols["rows"].append(rows)
         cols["cols"].append(cols_)
         cols["dtype"].append(dtype)
@@ -749,7 +757,8 @@ def _frame_from_row(row: Mapping[str, Any]) -> Frame:
         pixels=_pixels_from(row["pixels"], row["dtype"], rows, cols),
         pixel_size_m=(float(row["pixel_size_x_m"]), float(row["pixel_size_y_m"])),
         bit_depth=None if row["bit_depth"] is None else int(row["bit_depth"]),
-        dark=dark, roi=None if roi is None else tuple(int(v) for v in roi),
+        dark=dark, roi=None if roi is None else (int(roi[0]), int(roi[1]), int(roi[2]),
+                                                   int(roi[3])),
         source=row["source"] or "",
         metadata=json.loads(row["metadata"]) if row["metadata"] else {},
     )
@@ -761,7 +770,7 @@ def scan_id_of(spec: ScanSpec) -> str:
     A scan folder that grows (steps added while it is measured) keeps its id;
     each ingest of it is a new *version* (its content hash).
     """
-    ts = _utc(spec.timestamp, f"scan {spec.name!r}: timestamp")
+    ts = _utc_required(spec.timestamp, f"scan {spec.name!r}: timestamp")
     return text_sha256("scan", str(spec.name), ts.isoformat())[:16]
 
 
@@ -781,7 +790,7 @@ def _spec_json(spec: ScanSpec, step_refs: Sequence[Mapping[str, str | None]]) ->
         })
     return {
         "kind": spec.kind, "name": spec.name,
-        "timestamp": _utc(spec.timestamp, "scan timestamp").isoformat(),
+        "timestamp": _utc_required(spec.timestamp, "scan timestamp").isoformat(),
         "particle": dataclasses.asdict(spec.particle),
         "kinetic_energy_MeV": float(spec.kinetic_energy_MeV),
         "energy_spread": opt(spec.energy_spread),
@@ -910,8 +919,8 @@ def collect_inputs(paths: Iterable[str | Path]) -> list[Path]:
     """
     readers = _readers()
     suffixes = _input_suffixes(readers)
-    paths = [Path(p) for p in paths]
-    files = [p for p in paths if not p.is_dir()]
+    inputs = [Path(p) for p in paths]
+    files = [p for p in inputs if not p.is_dir()]
     darks = _referenced_darks([f for f in files if f.is_file()], readers)
     images = {(f.parent, f.stem.lower()) for f in files
               if f.suffix.lower() in readers.screen.IMAGE_SUFFIXES}
@@ -932,7 +941,7 @@ def collect_inputs(paths: Iterable[str | Path]) -> list[Path]:
 
     out: list[Path] = []
     seen: set[Path] = set()
-    for raw in paths:
+    for raw in inputs:
         if raw.is_dir():
             found = list(readers.iter_inputs([raw]))
             if not readers.scan.is_scan_folder(raw):
@@ -1176,7 +1185,7 @@ class Store:
                 if folder:
                     manifest = (Path(folder) / "scan.json").read_text(encoding="utf-8")
                     break
-        ts = _utc(spec.timestamp, f"{source}: scan timestamp")
+        ts = _utc_required(spec.timestamp, f"{source}: scan timestamp")
         row = {
             "scan_id": scan_id, "scan_version": sha256, "name": spec.name, "kind": spec.kind,
             "timestamp": _ns(ts), "particle": json_text(dataclasses.asdict(spec.particle)),
@@ -1945,7 +1954,8 @@ class Store:
                 if method == "rollup":
                     raise InputError(f"trend: no {kind} readings in the window to roll up")
                 return _empty_trend(out_cols, value_columns)
-            use_rollup, why = False, f"kind {kind!r} has no rollups"
+            use_rollup = False
+            why: str | None = f"kind {kind!r} has no rollups"
             if kind in ROLLUP_KINDS and method != "raw":
                 rollup_rows = self._snapshot(ROLLUP_KINDS[kind], t0, t1)
                 why = self._rollup_unusable(rows, rollup_rows, dev_col, value_columns, width_ns,
