@@ -63,7 +63,7 @@ def footer() -> None:
 
 EMPTY_HELP = (
     "To fill a store, ingest measurement files with `beamdiag ingest --store DIR FILES...` "
-    "(or leave `beamdiag watch --store DIR --inbox INBOX` running), or build the invented demo "
+    "(or leave `beamdiag watch --store DIR INBOX` running), or build the invented demo "
     "shift with `beamdiag demo --store DIR`; then start the dashboard with "
     "`beamdiag dashboard --store DIR`."
 )

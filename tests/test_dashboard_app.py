@@ -397,3 +397,62 @@ def test_handover_notes_reach_the_downloaded_report(monkeypatch, demo_store):
     assert not at.exception
     frame = next(e for e in at.get("iframe"))
     assert note in frame.proto.srcdoc
+
+
+# --------------------------------------------------------------------------- safety of the data access
+
+
+def test_the_dashboard_opens_the_store_read_only(demo_store):
+    from dashboard import _data
+    from diagnostics.errors import StoreError
+
+    store = _data.open_store(demo_store)
+    assert store.read_only
+    with pytest.raises(StoreError):
+        store.write_results("scans", [{"scan_id": "x", "timestamp": "2026-11-30T08:00:00Z"}])
+
+
+def test_data_caches_are_bounded_in_memory_and_never_pickled_to_disk():
+    """Every st.cache_data loader has a ttl and max_entries and no persist (ECOSYSTEM.md section 8)."""
+    import inspect
+
+    from streamlit.runtime.caching.cache_utils import CachedFunc
+
+    from dashboard import _data
+    from dashboard.views import __path__ as views_path  # noqa: F401  (namespace of the page files)
+
+    cached = [obj for _, obj in inspect.getmembers(_data) if isinstance(obj, CachedFunc)]
+    data_loaders = [c for c in cached if hasattr(c._info, "persist")]
+    assert len(data_loaders) >= 10
+    for c in data_loaders:
+        assert c._info.persist is None, c._info.func.__name__
+        assert c._info.ttl and c._info.max_entries, c._info.func.__name__
+    # the page files cache the same way (read as text: importing a page would run it)
+    for page in PAGES:
+        text = (APP.parent / page).read_text(encoding="utf-8")
+        for call in re.findall(r"@st\.cache_data\(([^)]*)\)", text):
+            assert "ttl=" in call and "max_entries=" in call and "persist" not in call, (page, call)
+
+
+def test_a_scan_still_filling_shows_a_provisional_result(monkeypatch, demo_store, tmp_path):
+    """A scan folder with fewer steps than its expected_steps is shown with the provisional flag."""
+    import json
+    import shutil
+
+    from diagnostics.store import Store
+
+    source = next((demo_store / "raw" / "scans").iterdir())
+    folder = tmp_path / "filling" / source.name
+    shutil.copytree(source, folder)
+    spec = json.loads((folder / "scan.json").read_text(encoding="utf-8"))
+    spec["steps"] = spec["steps"][: len(spec["steps"]) - 6]
+    (folder / "scan.json").write_text(json.dumps(spec), encoding="utf-8")
+    store = Store(tmp_path / "store")
+    outcome = store.ingest(folder)
+    assert outcome.status == "stored", outcome.message
+    at = app_for(monkeypatch, tmp_path / "store", "views/quad_scan.py")
+    assert not at.exception and not at.error
+    assert any("Provisional result" in w.value for w in at.warning)
+    table = at.dataframe[0].value
+    flags = table.loc[table["quantity"] == "flags", ["x", "y"]].iloc[0]
+    assert all("provisional" in f for f in flags)

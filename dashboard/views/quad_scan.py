@@ -137,8 +137,9 @@ def result_table(result) -> pd.DataFrame:
     rows.append({"quantity": "settings / shots", "unit": "",
                  **{p: f"{getattr(result, p).n_settings} / {getattr(result, p).n_points}" for p in ("x", "y")},
                  **{f"{p} (SI)": "" for p in ("x", "y")}})
-    rows.append({"quantity": "flags", "unit": "",
-                 **{p: _ui.flags_text(getattr(result, p).flags) for p in ("x", "y")},
+    rows.append({"quantity": "flags", "unit": "",  # the plane's own, then the whole scan's
+                 **{p: _ui.flags_text(tuple(dict.fromkeys(getattr(result, p).flags + tuple(result.flags))))
+                    for p in ("x", "y")},
                  **{f"{p} (SI)": "" for p in ("x", "y")}})
     return pd.DataFrame(rows, columns=["quantity", "x", "y", "unit", "x (SI)", "y (SI)"])
 
