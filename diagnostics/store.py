@@ -869,8 +869,7 @@ def _records_table(records: Sequence[Mapping[str, Any]] | pd.DataFrame, what: st
                 arr = pa.array(values)
             except (pa.ArrowInvalid, pa.ArrowTypeError):
                 arr = pa.array([None if v is None else json_text(v) for v in values], pa.string())
-            if pa.types.is_null(arr.type):
-                arr = arr.cast(pa.float64())
+            # an all-null column stays of type null: it unifies with any later type
             if pa.types.is_large_string(arr.type):
                 arr = arr.cast(pa.string())
             unit = None
@@ -1283,6 +1282,9 @@ class Store:
         first = pc.min(ts).as_py()
         date = _date_of_ns(first if first is not None else _ns(now))
         rel = f"results/{kind}/date={date}/part-{version}-{content}.parquet"
+        content_key = f"result-content:{version}:{content}"
+        if existing := self._existing(content_key, f"results/{kind}"):
+            return existing[0]  # the same records are stored (maybe merged by compaction)
         path = atomic_write_table(table, self.root / rel)
         bounds = pc.min_max(ts)
         entry = {"path": rel, "kind": f"results/{kind}", "date": date, "rows": n,
@@ -1290,7 +1292,7 @@ class Store:
                  "bytes": path.stat().st_size, "schema": schema_blob(table.schema)}
         stamp = utc_now_iso()
         with self._catalog.connect() as con:
-            self._catalog.register_files(con, [entry], [f"result:{version}"])
+            self._catalog.register_files(con, [entry], [f"result:{version}", content_key])
             con.execute(
                 "INSERT INTO result_sets (kind, version, created, updated, options, code_version,"
                 " rows) VALUES (?, ?, ?, ?, ?, ?, 0) ON CONFLICT (kind, version) DO UPDATE SET"
@@ -1780,8 +1782,12 @@ class Store:
             return self._read_table(f"results/{kind}", start=start, end=end, filter=expr)
         except StoreError:  # incompatible types across versions: read file by file
             rows = self._snapshot(f"results/{kind}", *_window(start, end))
-            tables = [pq.read_table(self.root / r["path"]) for r in rows]
-            table = pa.concat_tables(tables, promote_options="permissive")
+            table = _concat_lenient([pq.read_table(self.root / r["path"]) for r in rows])
+            t0, t1 = _window(start, end)
+            for bound, op in ((t0, pc.greater_equal), (t1, pc.less)):
+                if bound is not None:
+                    table = table.filter(op(table.column("timestamp"),
+                                            pa.scalar(_ns(bound), pa.int64()).cast(_TS)))
             return table if expr is None else table.filter(expr)
 
     # ------------------------------------------------------------------ catalog views
@@ -2067,10 +2073,15 @@ class Store:
         if date_list is not None:
             sql += " AND date IN (" + ",".join("?" for _ in date_list) + ")"
             params += date_list
-        by_date: dict[str, list[sqlite3.Row]] = {}
+        versions: dict[str, str] = {}
+        if kind.startswith("results/"):  # merge a result set only with itself
+            versions = {r["path"]: r["sha256"] for r in self._catalog.query(
+                "SELECT s.path, s.sha256 FROM file_sources s JOIN files f ON f.path = s.path"
+                " WHERE f.kind = ? AND f.live = 1 AND s.sha256 LIKE 'result:%'", (kind,))}
+        by_date: dict[tuple[str, str], list[sqlite3.Row]] = {}
         for r in self._catalog.query(sql + " ORDER BY date, tmin_ns, path", params):
-            by_date.setdefault(r["date"], []).append(r)
-        for date, rows in by_date.items():
+            by_date.setdefault((r["date"], versions.get(r["path"], "")), []).append(r)
+        for (date, _version), rows in by_date.items():
             for batch in _batches(rows, target_bytes):
                 if len(batch) < 2:
                     continue
@@ -2199,6 +2210,30 @@ def _exclusive(lock_path: Path):
             yield
         finally:
             fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
+
+
+def _concat_lenient(tables: Sequence[pa.Table]) -> pa.Table:
+    """Concatenate tables whose column types may disagree (results of different code
+    versions): types are promoted where Arrow can; columns that still disagree
+    become text."""
+    try:
+        return pa.concat_tables(tables, promote_options="permissive")
+    except (pa.ArrowInvalid, pa.ArrowTypeError):
+        pass
+    types: dict[str, set[pa.DataType]] = {}
+    for t in tables:
+        for f in t.schema:
+            if not pa.types.is_null(f.type):
+                types.setdefault(f.name, set()).add(f.type)
+    clash = {name for name, seen in types.items() if len(seen) > 1}
+    fixed = []
+    for t in tables:
+        for name in clash & set(t.column_names):
+            i = t.schema.get_field_index(name)
+            t = t.set_column(i, t.schema.field(i).with_type(pa.string()),
+                             t.column(i).cast(pa.string()))
+        fixed.append(t)
+    return pa.concat_tables(fixed, promote_options="permissive")
 
 
 def _conform(table: pa.Table, schema: pa.Schema) -> pa.Table:

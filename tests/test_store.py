@@ -339,6 +339,14 @@ def test_results_versions_and_options(store):
     with pytest.raises(InputError, match="not a result kind"):
         store.write_results("../etc", recs)
     assert store.read_results("orbit").empty
+    # after compaction merged the result files, the same records again add nothing
+    store.write_results("profiles", recs[1:], options={"model": "gaussian"})
+    store.compact(kinds="results/profiles")
+    assert len(store.read_results("profiles", version="all")) == 4
+    store.write_results("profiles", recs, options={"model": "gaussian"})
+    store.write_results("profiles", recs[1:], options={"model": "gaussian"})
+    assert len(store.read_results("profiles", version="all")) == 4
+    assert list(store.result_versions("profiles")["rows"]) == [3, 1]
 
 
 # ------------------------------------------------------------------ DuckDB sandbox
