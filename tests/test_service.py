@@ -765,3 +765,18 @@ def test_cli_rejects_a_bad_option_with_one_line(tmp_path, capsys):
     assert rc == 2
     err = capsys.readouterr().err.strip()
     assert "--orbit-interval" in err and len(err.splitlines()) == 1
+
+
+def test_a_second_service_on_the_same_store_is_refused(tmp_path):
+    from diagnostics.errors import StoreError
+
+    svc, store, inbox = _service(tmp_path)
+    held = svc._lock()
+    try:
+        other, _, _ = _service(tmp_path)
+        other.store = store
+        with pytest.raises(StoreError, match=f"another beamdiag watch is running on this store \\(pid {os.getpid()}\\)"):
+            other.run(once=True)
+    finally:
+        held.close()
+    assert svc.run(once=True) == 0  # free again once the first one is gone
