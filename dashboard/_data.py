@@ -207,12 +207,7 @@ def trend(root: str, stamp_: str, kind: str, value_columns: tuple[str, ...], win
 def results(root: str, stamp_: str, kind: str, window: tuple[str, str] | None = None) -> pd.DataFrame:
     """``Store.read_results(kind)`` in the window (empty frame when there are none)."""
     start, end = window if window else (None, None)
-    try:
-        return open_store(root).read_results(kind, start=start, end=end)
-    except Exception as exc:  # no such result kind yet
-        if type(exc).__name__ in ("StoreError", "InputError", "FileNotFoundError", "KeyError"):
-            return pd.DataFrame()
-        raise
+    return open_store(root).read_results(kind, start=start, end=end)
 
 
 @st.cache_data(ttl=TTL_S, max_entries=16, show_spinner=False)

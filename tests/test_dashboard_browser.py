@@ -178,3 +178,41 @@ def test_window_change_updates_the_shift_page_quickly(server, browser):
         page.screenshot(path=str(SHOTS / "shift_30min.png"), full_page=True)
     finally:
         context.close()
+
+
+def test_shift_page_follows_new_data_while_the_watch_service_runs(server, store, browser):
+    """With a fresh heartbeat the live panels rerun on their own and pick up new readings."""
+    import uuid
+
+    import pandas as pd
+
+    from diagnostics import service
+    from diagnostics.store import Store
+
+    beat = service.heartbeat_path(store)
+    service.write_json_atomic(beat, {"time": pd.Timestamp.now(tz="UTC").isoformat(), "state": "running",
+                                     "interval_s": 2.0, "pending": 0, "lag_s": 0.0})
+    context = browser.new_context(viewport={"width": 1600, "height": 1000})
+    page = context.new_page()
+    try:
+        page.goto(server + "/", wait_until="domcontentloaded")
+        wait_headline(page)
+        page.get_by_text("Live: the watch service is running", exact=False).first.wait_for(timeout=30_000)
+        fact = page.get_by_text("Last: BPMs", exact=True).first.locator("xpath=following-sibling::div[1]")
+        before = fact.inner_text()
+        # one more minute of readings lands in the store, as the watch service would write it
+        s = Store(store)
+        last = s.time_range("bpm")[1]
+        recent = s.read_bpm(start=last - pd.Timedelta(seconds=59))
+        recent["timestamp"] = recent["timestamp"] + pd.Timedelta(minutes=1)
+        s.write_bpm(recent, sha256=uuid.uuid4().hex * 2, source="live-test")
+        service.write_json_atomic(beat, {"time": pd.Timestamp.now(tz="UTC").isoformat(), "state": "running",
+                                         "interval_s": 2.0, "pending": 0, "lag_s": 0.0})
+        page.wait_for_function("(args) => { const [el, b] = args; return el.innerText !== b; }",
+                               arg=[fact.element_handle(), before], timeout=60_000)
+        after = fact.inner_text()
+        assert pd.Timestamp(after, tz="UTC") > pd.Timestamp(before, tz="UTC")
+        page.screenshot(path=str(SHOTS / "shift_live.png"), full_page=True)
+    finally:
+        context.close()
+        beat.unlink(missing_ok=True)

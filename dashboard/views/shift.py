@@ -51,11 +51,14 @@ def step_events(report) -> tuple:
     return tuple(getattr(report, "step_events", ()) or ())
 
 
-def headline(root: str, waiting: bool = False) -> None:
+def headline(root: str, waiting: bool = False, live: bool = False) -> None:
     stamp = _data.stamp(root)
     window = _ui.current_window(root, stamp)
     if window is None:
         return
+    if live:
+        st.caption(f"● Live: the watch service is running; numbers refresh every {LIVE_HEADLINE_S} s "
+                   f"(data up to {_ui.fmt_time(window.end)[11:19]} UTC), trends every {LIVE_TRENDS_S} s.")
     cols = st.columns(5)
     row = latest_scan_result(root, stamp, window)
     for col, plane in zip(cols[:2], ("x", "y"), strict=True):
@@ -332,13 +335,10 @@ def main() -> None:
         return
     beat = _data.heartbeat(root)
     live = _data.heartbeat_is_fresh(beat)
-    if live:
-        st.caption(f"● Live: the watch service is running; numbers refresh every {LIVE_HEADLINE_S} s, "
-                   f"trends every {LIVE_TRENDS_S} s.")
     # the orbit analysis of a new window starts after the first render, not during it
     waiting = not _data.orbit_report(root, stamp, window.key, start=False).ready
     every = POLL_S if waiting else (LIVE_HEADLINE_S if live else None)
-    st.fragment(headline, run_every=every)(root, waiting)
+    st.fragment(headline, run_every=every)(root, waiting, live)
     st.divider()
     st.fragment(trends, run_every=LIVE_TRENDS_S if live else None)(root)
     if waiting:
