@@ -605,7 +605,9 @@ def _input_identity(path: Path, readers: Any) -> tuple[str, int, int, list[dict[
             parts.append({"path": side, "role": "sidecar", "sha256": file_sha256(side)})
             doc = json.loads(side.read_text(encoding="utf-8-sig"))
             if isinstance(doc, dict) and isinstance(doc.get("dark"), str):
-                dark = side.parent / doc["dark"]
+                # the reader's own containment rule: a dark frame outside the sidecar's
+                # folder is never opened, not even to hash it (the reader refuses it)
+                dark = readers._util.inside(side.parent, doc["dark"], side, "dark")
                 parts.append({"path": dark, "role": "dark", "sha256": file_sha256(dark)})
     if len(parts) == 1:
         return own, st.st_size, st.st_mtime_ns, parts

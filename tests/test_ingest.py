@@ -245,6 +245,30 @@ def test_identical_pixels_with_other_sidecars_are_two_frames(tmp_path):
     assert store.ingest(tmp_path / "b.png").status == "duplicate"
 
 
+def test_dark_frame_outside_the_sidecar_folder_is_never_opened(tmp_path, monkeypatch):
+    """A sidecar naming ``../../etc/passwd`` as its dark frame is quarantined, and the
+    store does not even open that file to hash it (the reader's containment rule)."""
+    import diagnostics._storeio as storeio
+    import diagnostics.store as store_module
+
+    inbox = tmp_path / "inbox"
+    inbox.mkdir()
+    write_png16(inbox / "a.png", np.zeros((4, 4), np.uint16),
+                sidecar={**sidecar(t="2026-11-30T06:01:00Z"), "dark": "../../etc/passwd"})
+    hashed: list[str] = []
+    real = storeio.file_sha256
+
+    def spy(path, *args, **kwargs):
+        hashed.append(str(path))
+        return real(path, *args, **kwargs)
+
+    monkeypatch.setattr(store_module, "file_sha256", spy)
+    outcome = Store(tmp_path / "store").ingest(inbox / "a.png")
+    assert outcome.status == "quarantined"
+    assert "leaves the folder" in outcome.message
+    assert not any("passwd" in p for p in hashed)
+
+
 @pytest.mark.parametrize("kind", ["png8", "png16", "npy_big_endian_u2", "npy_f4", "tiff16"])
 def test_images_read_back_bit_identical_after_ingest(tmp_path, kind):
     """Through reader and store: the pixels read back equal the array that was written
