@@ -459,14 +459,14 @@ FRAME_READ_SPAN = pd.Timedelta("1h")
 
 
 def _stored_items(store: Any, kind: str, *, ids: Iterable[str] | None, start: Any, end: Any,
-                  devices: Sequence[str] | None) -> list[tuple[str, Any, dict[str, Any]]]:
+                  devices: Sequence[str] | None, scan: str | None = None) -> list[tuple[str, Any, dict[str, Any]]]:
     """Index rows and domain objects of one window, paired (both are sorted by time, id)."""
     index_of = store.profile_index if kind == "profiles" else store.frame_index
     read = store.read_profiles if kind == "profiles" else store.read_frames
     wanted = None if ids is None else {str(i) for i in ids}
     for _attempt in range(5):
-        index = index_of(start=start, end=end, devices=devices)
-        objects = read(start=start, end=end, devices=devices)
+        index = index_of(start=start, end=end, devices=devices, scan=scan)
+        objects = read(start=start, end=end, devices=devices, scan=scan)
         if len(index) == len(objects):
             break
         # the live service stored more between the two reads: read the window again
@@ -807,9 +807,26 @@ def analyze_ingested(store: Any, outcomes: Sequence[Any], *, options: AnalysisOp
         if kind == "scans":
             key = "scan_id"
             records = []
+            step_records: dict[str, list[dict[str, Any]]] = {"profiles": [], "frames": []}
             for outcome in group:
                 for scan_id in scan_ids_of_outcome(store, outcome):
                     records.append(analyze_scan_spec(scan_id, store.load_scan(scan_id), options, provisional=False))
+                    # the steps' own profiles and images get their rows too, as in analyze_store
+                    step_records["profiles"] += analyze_profile_items(
+                        _stored_items(store, "profiles", ids=None, start=None, end=None, devices=None,
+                                      scan=scan_id), options)
+                    step_records["frames"] += analyze_frame_items(
+                        _stored_items(store, "frames", ids=None, start=None, end=None, devices=None,
+                                      scan=scan_id), options)
+            for step_kind, rows in step_records.items():
+                step_key = "profile_id" if step_kind == "profiles" else "frame_id"
+                if skip_existing and rows:
+                    times = [pd.Timestamp(r["timestamp"]) for r in rows if r.get("timestamp")]
+                    have = _existing_keys(store, step_kind, step_key, version, min(times),
+                                          max(times) + pd.Timedelta(1, "ns")) if times else set()
+                    rows = [r for r in rows if str(r.get(step_key)) not in have]
+                _write(store, step_kind, rows, options, version, True)
+                written += len(rows)
         else:
             key = "profile_id" if kind == "profiles" else "frame_id"
             items = ingested_items(store, kind, group)

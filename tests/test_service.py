@@ -780,3 +780,24 @@ def test_a_second_service_on_the_same_store_is_refused(tmp_path):
     finally:
         held.close()
     assert svc.run(once=True) == 0  # free again once the first one is gone
+
+
+def test_complete_scan_folder_is_stored_with_its_steps_analysed(tmp_path):
+    """The committed sample quad scan (wire profiles per step): one scan row, one row per
+    step profile, the folder moved to done/ whole."""
+    import shutil
+
+    from diagnostics.store import Store
+
+    src = REPO / "sample_data" / "scans"
+    folder = next(p for p in src.iterdir() if (p / "scan.json").exists())
+    inbox, store = tmp_path / "inbox", Store(tmp_path / "store")
+    shutil.copytree(folder, inbox / folder.name)
+    svc = WatchService(inbox, store, WatchConfig(interval_s=0.05, stable_seconds=0, orbit_every_s=0,
+                                                 compact_every_s=0), log=open(os.devnull, "w"))  # noqa: SIM115
+    svc.cycle()
+    assert (inbox / "done" / folder.name / "scan.json").exists() and not (inbox / folder.name).exists()
+    scans = store.read_results("scans")
+    assert len(scans) == 1 and not scans["provisional"].iloc[0]
+    n_profiles = len(store.profile_index(scan=scans["scan_id"].iloc[0]))
+    assert n_profiles > 0 and len(store.read_results("profiles")) == n_profiles
