@@ -589,12 +589,14 @@ class WatchService:
         for rel in scans:
             ok, complete, signature, oldest_ns = self._scan_folder_state(rel, now)
             if complete:
+                self._scans.pop(rel, None)
                 note(oldest_ns)
                 if ok:
                     ready.append(Unit("scan", rel, (rel,), oldest_ns))
-            elif ok:
+            else:
+                # still being recorded: waits for its producer (not counted in the lag)
                 watch = self._scans.setdefault(rel, _ScanWatch())
-                if watch.signature != signature:
+                if ok and watch.signature != signature:
                     watch.signature = signature
                     filling.append(rel)
 
