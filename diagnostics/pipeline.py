@@ -172,14 +172,13 @@ class KindSummary:
     """What one result kind's analysis did.
 
     ``analysed`` rows written, ``flagged`` of them with any flag, ``failed`` of them
-    flagged ``fit_failed``, ``paths`` the result files written.
+    flagged ``fit_failed``.
     """
 
     kind: str
     analysed: int = 0
     flagged: int = 0
     failed: int = 0
-    paths: tuple[str, ...] = ()
     message: str = ""
 
 
@@ -442,11 +441,10 @@ def _write(store: Any, kind: str, records: Sequence[dict], options: AnalysisOpti
     return (str(path),) if path is not None else ()
 
 
-def _summarise(kind: str, records: Sequence[Mapping[str, Any]], paths: tuple[str, ...],
-               message: str = "") -> KindSummary:
+def _summarise(kind: str, records: Sequence[Mapping[str, Any]], message: str = "") -> KindSummary:
     flagged = sum(1 for r in records if r.get("flags"))
     failed = sum(1 for r in records if "fit_failed" in (r.get("flags") or ()))
-    return KindSummary(kind, analysed=len(records), flagged=flagged, failed=failed, paths=paths, message=message)
+    return KindSummary(kind, analysed=len(records), flagged=flagged, failed=failed, message=message)
 
 
 def _extra(row: Mapping[str, Any]) -> dict[str, Any]:
@@ -887,7 +885,7 @@ def analyze_store(store: Any, *, kinds: Sequence[str] = PIPELINE_KINDS, start: A
     summaries = []
     for kind in kinds:
         records = runners[kind]()
-        summaries.append(_summarise(kind, records, ()))
+        summaries.append(_summarise(kind, records))
     return PipelineSummary(
         kinds=tuple(summaries), version=version, options=options.to_dict(),
         elapsed_s=time.perf_counter() - t_start,
