@@ -27,7 +27,7 @@ DISPLAY_MAX_SIDE = 640
 #: Colour scales offered for frames (perceptually uniform ones first).
 COLOUR_SCALES = ("viridis", "inferno", "cividis", "gray")
 
-CONTRAST = ("full sensor range", "1st-99.9th percentile")
+CONTRAST = ("1st-99.9th percentile", "full sensor range")
 
 
 @st.cache_data(ttl=_data.TTL_S, max_entries=16, show_spinner="Analysing the frame ...")
@@ -75,7 +75,7 @@ def frame_figure(frame, result, ellipses, *, colour_scale: str, contrast: str) -
     px, py = frame.pixel_size_m
     x_mm = (np.arange(binned.shape[1]) * b + (b - 1) / 2) * px * 1e3
     y_mm = (np.arange(binned.shape[0]) * b + (b - 1) / 2) * py * 1e3
-    if contrast == CONTRAST[0]:
+    if contrast == "full sensor range":
         zmin, zmax = 0.0, float(2 ** (frame.bit_depth or 16) - 1)
     else:
         zmin, zmax = (float(v) for v in np.nanpercentile(binned, [1.0, 99.9]))
@@ -90,12 +90,11 @@ def frame_figure(frame, result, ellipses, *, colour_scale: str, contrast: str) -
         if np.isfinite(ex).any():
             fig.add_trace(go.Scatter(x=ex * 1e3, y=ey * 1e3, mode="lines", name=f"{n:g}σ ellipse",
                                      line=dict(color="#ff4136" if n == 1 else "#ffdc00", width=1.5)))
-    fig.update_yaxes(autorange="reversed", scaleanchor="x", title="y (mm, rows)")
-    fig.update_xaxes(title="x (mm, columns)")
-    fig.update_layout(height=520, margin=dict(l=10, r=10, t=30, b=10),
-                      title=f"{frame.device} {_ui.fmt_time(frame.timestamp)} · {shown}"
-                            + (f" · binned {b}×{b}" if b > 1 else ""),
-                      legend=dict(orientation="h", yanchor="bottom", y=1.0, x=0))
+    _ui.base_layout(fig, title=f"{frame.device} {_ui.fmt_time(frame.timestamp)} · {shown}"
+                               + (f" · binned {b}×{b}" if b > 1 else ""), height=560,
+                    x_title="x (mm, columns)", y_title="y (mm, rows)")
+    fig.update_yaxes(autorange="reversed", scaleanchor="x")
+    fig.update_layout(hovermode="closest")
     return fig
 
 
@@ -160,7 +159,7 @@ def screens(root: str, stamp: str, window: _data.Window) -> None:
                        help=f"{result.sigma_y_m!r} m ({result.method})")
     with cols[2]:
         _ui.big_number("Tilt", f"{_ui.fmt_num(math.degrees(result.tilt_rad), 1, 3)}°",
-                       help=f"{result.tilt_rad!r} rad, major axis from +x toward +y")
+                       help=f"{result.tilt_rad!r} rad", sub="major axis from +x toward +y")
     with cols[3]:
         _ui.big_number("Centroid x / y (mm)", f"{_ui.fmt_num(result.centroid_x_m, 1e3, 3)} / "
                                               f"{_ui.fmt_num(result.centroid_y_m, 1e3, 3)}",

@@ -266,8 +266,7 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
             highlight = None
     else:
         highlight = (worst.bpm, worst.plane)
-    fig = make_subplots(rows=2, cols=1, shared_xaxes=True, vertical_spacing=0.08,
-                        subplot_titles=("horizontal x", "vertical y"))
+    fig = make_subplots(rows=2, cols=1, shared_xaxes=True, vertical_spacing=0.06)
     t = _ui.times(times)
     for r, (plane, values) in enumerate((("x", dx), ("y", dy)), start=1):
         # all BPMs of a plane as one trace, separated by gaps: one trace is far cheaper than 24
@@ -294,7 +293,8 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
                          unit="µm", row=1 if plane == "x" else 2, col=1)
     _ui.mark_events(fig, events)
     _ui.base_layout(fig, height=440)
-    fig.update_yaxes(title="drift (µm)")
+    fig.update_yaxes(title="x drift (µm)", row=1, col=1)
+    fig.update_yaxes(title="y drift (µm)", row=2, col=1)
     _ui.plot(fig, key="shift_orbit")
     st.caption(f"{len(bpms)} BPMs, {bucket} bucket means minus the reference orbit (first "
                f"{_data.library('orbit').DEFAULT_REFERENCE_MINUTES:g} min); the BPM with the largest "
