@@ -391,12 +391,14 @@ def test_handover_notes_reach_the_downloaded_report(monkeypatch, demo_store):
     pytest.importorskip("diagnostics.report", reason="the shift report module is not built yet")
     at = app_for(monkeypatch, demo_store, "views/handover.py")
     assert not at.exception
-    note = "Q-05 scan repeated; watch BPM-09 after the corrector change"
+    note = "Q-05 scan repeated; watch BPM-09 after the corrector change <b>&</b>"
     at.text_area(key="handover_notes_text").input(note)
     at.button[0].click().run()
     assert not at.exception
-    frame = next(e for e in at.get("iframe"))
-    assert note in frame.proto.srcdoc
+    srcdoc = next(e for e in at.get("iframe")).proto.srcdoc
+    # the notes arrive HTML-escaped: the preview runs the report's scripts, never the operator's
+    assert "Q-05 scan repeated; watch BPM-09 after the corrector change &lt;b&gt;&amp;&lt;/b&gt;" in srcdoc
+    assert "<b>&</b>" not in srcdoc
 
 
 # --------------------------------------------------------------------------- safety of the data access
