@@ -111,10 +111,13 @@ def plan(store: Any, kind: str, *, start: Any = None, end: Any = None,
     """The tasks of a reanalysis: raw ids grouped by the stored file holding them.
 
     Profiles and frames are grouped by their live Parquet file
-    (``Store.live_files``; pieces of at most ``max_task_rows``), and only ids the
-    store's index lists for the window are kept (so superseded scan versions and
-    rows outside the window drop out).  Each scan is one task.  The order is
-    deterministic: by file, then by time and id.
+    (``Store.live_files``): a file with more than ``max_task_rows`` rows is cut
+    into pieces of that size, and small files (one image per file before
+    compaction) are packed whole, in time order, into tasks of up to
+    ``max_task_rows``.  Only ids the store's index lists for the window are kept
+    (so superseded scan versions and rows outside the window drop out).  Each scan
+    is one task.  The order is deterministic (files by first time, rows by time
+    and id).  ``Partition.file`` names the first file of a task.
     """
     if kind not in REANALYSIS_KINDS:
         raise InputError(f"reanalyze: --kind must be one of {', '.join(REANALYSIS_KINDS)}, got {kind!r}")
@@ -129,16 +132,40 @@ def plan(store: Any, kind: str, *, start: Any = None, end: Any = None,
         return []
     wanted = set(index["id"].astype(str))
     max_task_rows = max_task_rows or MAX_TASK_ROWS[kind]
-    parts: list[Partition] = []
+    files = []
     for path in store.live_files(kind):
         table = _file_rows(path)
         ids = table.column("id").to_pylist()
         times = table.column("timestamp").cast(pa.int64()).to_pylist()
         rows = sorted((t, str(i)) for i, t in zip(ids, times, strict=True) if str(i) in wanted)
-        for k in range(0, len(rows), max_task_rows):
-            chunk = rows[k:k + max_task_rows]
-            parts.append(Partition(kind, str(Path(path).relative_to(store.root)), tuple(i for _t, i in chunk),
-                                   chunk[0][0], chunk[-1][0] + 1))
+        if rows:
+            files.append((rows[0][0], str(Path(path).relative_to(store.root)), rows))
+    files.sort()  # in time order, so files packed together span a short window
+    parts: list[Partition] = []
+    pack: list[tuple[int, str]] = []
+    pack_file = ""
+
+    def close_pack() -> None:
+        if pack:
+            parts.append(Partition(kind, pack_file, tuple(i for _t, i in pack), min(t for t, _ in pack),
+                                   max(t for t, _ in pack) + 1))
+
+    for _t0, rel, rows in files:
+        if len(rows) > max_task_rows:
+            # a big file is split into pieces on its own
+            close_pack()
+            pack, pack_file = [], ""
+            for k in range(0, len(rows), max_task_rows):
+                chunk = rows[k:k + max_task_rows]
+                parts.append(Partition(kind, rel, tuple(i for _t, i in chunk), chunk[0][0], chunk[-1][0] + 1))
+            continue
+        if len(pack) + len(rows) > max_task_rows:
+            close_pack()
+            pack, pack_file = [], ""
+        # small files (e.g. one image each, before compaction) share a task, whole
+        pack_file = pack_file or rel
+        pack.extend(rows)
+    close_pack()
     return parts
 
 

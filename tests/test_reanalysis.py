@@ -72,12 +72,15 @@ def _comparable(records, key):
 
 def test_plan_groups_ids_by_stored_file_and_covers_each_once(archive):
     store, sigmas = archive
-    parts = reanalysis.plan(store, "profiles")
-    assert len(parts) == 4 and len({p.file for p in parts}) == 4
+    parts = reanalysis.plan(store, "profiles", max_task_rows=10)
+    assert len(parts) == 4 and len({p.file for p in parts}) == 4  # one file of 10 per task
     ids = [i for p in parts for i in p.ids]
     assert sorted(ids) == sorted(sigmas) and len(ids) == len(set(ids))
     small = reanalysis.plan(store, "profiles", max_task_rows=3)
     assert len(small) == 4 * 4 and sorted(i for p in small for i in p.ids) == sorted(ids)
+    packed = reanalysis.plan(store, "profiles", max_task_rows=25)  # small files share tasks, whole
+    assert [len(p.ids) for p in packed] == [20, 20]
+    assert sorted(i for p in packed for i in p.ids) == sorted(ids)
     window = reanalysis.plan(store, "profiles", start=T0 + pd.Timedelta(1, "h"), end=T0 + pd.Timedelta(2, "h"))
     assert sum(len(p.ids) for p in window) == 10
     with pytest.raises(InputError, match="--kind must be one of profiles, frames, scans"):
@@ -89,7 +92,7 @@ def test_serial_reanalysis_recovers_the_known_sigmas(archive):
     amplitude 800, so sigma is good to well under 1 %)."""
     store, sigmas = archive
     summary, records = reanalysis.reanalyze(store, kind="profiles", serial=True, write=False, progress=False)
-    assert summary.n_records == 40 and summary.n_tasks == 4 and summary.scheduler == "serial"
+    assert summary.n_records == 40 and summary.n_tasks == 1 and summary.scheduler == "serial"
     got = {r["profile_id"]: r["sigma_m"] for r in records}
     assert got.keys() == sigmas.keys()
     rel = [abs(got[k] / v - 1) for k, v in sigmas.items()]
@@ -102,10 +105,10 @@ def test_local_cluster_of_two_workers_gives_records_identical_to_serial(archive)
     store, _ = archive
     opts = pipeline.AnalysisOptions(baseline="constant")
     _s1, serial = reanalysis.reanalyze(store, kind="profiles", options=opts, serial=True, write=False,
-                                       progress=False)
+                                       progress=False, max_task_rows=10)
     summary, dask_records = reanalysis.reanalyze(store, kind="profiles", options=opts, workers=2, write=False,
-                                                 progress=False)
-    assert summary.scheduler == "local:2"
+                                                 progress=False, max_task_rows=10)
+    assert summary.scheduler == "local:2" and summary.n_tasks == 4
     assert dask_records == serial  # same order too (task order)
     _f1, serial_frames = reanalysis.reanalyze(store, kind="frames", serial=True, write=False, progress=False,
                                               max_task_rows=2)
@@ -152,7 +155,7 @@ def test_each_reanalysis_is_a_new_version_and_old_ones_stay(tmp_path):
 
 def test_progress_counter_and_final_line_on_stderr(archive, capsys):
     store, _ = archive
-    reanalysis.reanalyze(store, kind="profiles", serial=True, write=False, progress=True)
+    reanalysis.reanalyze(store, kind="profiles", serial=True, write=False, progress=True, max_task_rows=10)
     err = capsys.readouterr().err
     assert "reanalyze profiles: 4/4 tasks" in err and "40 records" in err
 
@@ -163,7 +166,7 @@ def test_cli_serial_json_summary(archive, capsys):
                "--baseline", "constant", "--window-n-sigma", "3.5"])
     assert rc == 0
     out = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
-    assert out["records"] == 40 and out["tasks"] == 4 and out["scheduler"] == "serial"
+    assert out["records"] == 40 and out["tasks"] == 1 and out["scheduler"] == "serial"
     assert out["options"]["baseline"] == "constant" and out["options"]["window_n_sigma"] == 3.5
     assert out["version"] in set(store.result_versions("profiles")["version"])
 
@@ -202,8 +205,10 @@ def test_identity_holds_for_tasks_large_enough_for_a_threaded_blas(tmp_path):
     for k in range(2):
         profs, _ = make_profiles(1000, seed=20 + k, t0=T0 + pd.Timedelta(10 * k, "h"), n_points=200)
         store.write_profiles(profs, sha256=f"{k + 1:x}" * 64, source=f"big{k}")
-    _s, serial = reanalysis.reanalyze(store, kind="profiles", serial=True, write=False, progress=False)
-    summary, clustered = reanalysis.reanalyze(store, kind="profiles", workers=2, write=False, progress=False)
-    assert summary.n_tasks == len(store.live_files("profiles")) >= 2 and len(serial) == 2000
+    _s, serial = reanalysis.reanalyze(store, kind="profiles", serial=True, write=False, progress=False,
+                                      max_task_rows=1000)
+    summary, clustered = reanalysis.reanalyze(store, kind="profiles", workers=2, write=False, progress=False,
+                                              max_task_rows=1000)
+    assert summary.n_tasks >= 2 and len(serial) == 2000
     differ = sum(1 for a, b in zip(clustered, serial, strict=True) if a != b)
     assert differ == 0, f"{differ} of {len(serial)} rows differ"
