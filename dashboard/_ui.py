@@ -396,7 +396,7 @@ def orbit_report_or_wait(root: str, stamp: str, window: _data.Window):
     Returns the report, a stand-in of an overlapping window while updating
     (with a note), or ``None`` while nothing is ready yet.
     """
-    answer = _data.orbit_report(root, stamp, window.key)
+    answer = _data.orbit_report(root, stamp, window.key)  # an analysis that raised raises here
     if answer.ready:
         return answer.report
 

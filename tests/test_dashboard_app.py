@@ -458,3 +458,20 @@ def test_a_scan_still_filling_shows_a_provisional_result(monkeypatch, demo_store
     table = at.dataframe[0].value
     flags = table.loc[table["quantity"] == "flags", ["x", "y"]].iloc[0]
     assert all("provisional" in f for f in flags)
+
+
+def test_a_failing_orbit_analysis_costs_its_numbers_not_the_page(monkeypatch, demo_store):
+    from dashboard import _data
+
+    def broken(root, start, end):
+        raise RuntimeError("readings unreadable")
+
+    monkeypatch.setattr(_data, "_orbit_job", broken)
+    _data.orbit_jobs().__init__()  # forget finished analyses of earlier tests
+    at = settle(app_for(monkeypatch, demo_store))
+    assert not at.exception
+    assert any("orbit analysis of this window failed: RuntimeError: readings unreadable" in e.value
+               for e in at.error)
+    assert metric(at, "Worst orbit drift").value == "–"
+    assert metric(at, "Emittance x (norm.)").value != "–"  # the rest of the headline is there
+    _data.orbit_jobs().__init__()

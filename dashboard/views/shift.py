@@ -77,12 +77,19 @@ def headline(root: str, waiting: bool = False, live: bool = False) -> None:
                 sub=f"{row.get('scan_name', '')} · {_ui.fmt_time(row.get('timestamp'))[11:16]}"
                     + (f" · ⚠ {', '.join(flags)}" if flags else ""),
             )
-    answer = _data.orbit_report(root, stamp, window.key, start=not waiting)
+    failed = False
+    try:
+        answer = _data.orbit_report(root, stamp, window.key, start=not waiting)
+    except Exception as exc:  # noqa: BLE001 - the analysis failed: say so, keep the page
+        st.error(f"The orbit analysis of this window failed: {type(exc).__name__}: "
+                 f"{' '.join(str(exc).split())[:300]}", icon=":material/error:")
+        answer, failed = _data.OrbitAnswer(True, None), True
     if waiting and answer.ready:
         st.rerun()  # the analysis has arrived: redraw the whole page with it
     report = answer.report
     if report is None:
-        note = "analysing the orbit …" if not answer.ready else "no BPM readings in the window"
+        note = ("analysing the orbit …" if not answer.ready else
+                "orbit analysis failed" if failed else "no BPM readings in the window")
         for col, label in zip(cols[2:], ("Worst orbit drift", "Orbit steps", "Out-of-limit events"), strict=True):
             with col:
                 _ui.big_number(label, "…" if not answer.ready else "–", sub=note)
@@ -165,7 +172,10 @@ def trends(root: str) -> None:
     window = _ui.current_window(root, stamp)
     if window is None:
         return
-    report = _data.orbit_report(root, stamp, window.key, start=False).report
+    try:
+        report = _data.orbit_report(root, stamp, window.key, start=False).report
+    except Exception:  # noqa: BLE001 - reported by the headline; trends go on without it
+        report = None
     events = _ui.guard(events_of, root, stamp, window, report, what="The event list")
     left, right = st.columns(2)
     with left:
@@ -336,7 +346,10 @@ def main() -> None:
     beat = _data.heartbeat(root)
     live = _data.heartbeat_is_fresh(beat)
     # the orbit analysis of a new window starts after the first render, not during it
-    waiting = not _data.orbit_report(root, stamp, window.key, start=False).ready
+    try:
+        waiting = not _data.orbit_report(root, stamp, window.key, start=False).ready
+    except Exception:  # noqa: BLE001 - a failed analysis: the headline says so
+        waiting = False
     every = POLL_S if waiting else (LIVE_HEADLINE_S if live else None)
     st.fragment(headline, run_every=every)(root, waiting, live)
     st.divider()
