@@ -60,6 +60,8 @@ def main() -> int:
     from diagnostics import pipeline, profiles, reanalysis
 
     load_at_start = os.getloadavg()[0]  # other work on the machine, before ours starts
+    # the workers import the package afresh: an edit of its sources during the run would show
+    code_mtimes = {p: p.stat().st_mtime_ns for p in Path(pipeline.__file__).parent.glob("*.py")}
     with tempfile.TemporaryDirectory() as tmp:
         t = time.perf_counter()
         store = build_store(Path(tmp) / "store")
@@ -94,7 +96,11 @@ def main() -> int:
                 s, recs = reanalysis.reanalyze(store, kind="profiles", scheduler=cluster.scheduler_address,
                                                write=False, progress=False)
                 walls[n] = time.perf_counter() - t
-                assert recs == records, "cluster records differ from the serial run"
+                if recs != records:
+                    changed = [p.name for p, m in code_mtimes.items() if p.stat().st_mtime_ns != m]
+                    differ = sum(a != b for a, b in zip(recs, records, strict=True))
+                    raise SystemExit(f"{differ} cluster rows differ from the serial run"
+                                     + (f" (source files changed during the run: {changed})" if changed else ""))
             print(f"LocalCluster {n} worker(s): {walls[n]:.2f} s = {N_PROFILES / walls[n]:,.0f} profiles/s "
                   f"(records identical to serial)")
         busy = load_at_start > 0.5 * (os.cpu_count() or 1)
