@@ -1411,7 +1411,8 @@ def fit_gaussians_batch(position_m, signals, *, baseline: str = "linear") -> Bat
     """
     n_base = _check_baseline(baseline)
     x, y = _check_batch(position_m, signals)
-    parts = [_fit_gaussians_chunk(x[i : i + BATCH_CHUNK], y[i : i + BATCH_CHUNK], n_base) for i in range(0, len(y), BATCH_CHUNK)]
+    shared = np.ndim(position_m) == 1
+    parts = [_fit_gaussians_chunk(x[i : i + BATCH_CHUNK], y[i : i + BATCH_CHUNK], n_base, shared) for i in range(0, len(y), BATCH_CHUNK)]
     if len(parts) == 1:
         return parts[0]
     rows = {key: np.concatenate([q.rows[key] for q in parts]) for key in parts[0].rows}
@@ -1423,12 +1424,270 @@ def fit_gaussians_batch(position_m, signals, *, baseline: str = "linear") -> Bat
 
 
 #: Profiles per chunk in the batch routines: small enough that the working
-#: arrays (chunk x points x parameters) stay in the CPU cache.
+#: arrays (chunk x points) stay in the CPU cache.
 BATCH_CHUNK = 128
 
+#: The batch Gauss-Newton iteration of a profile stops when its step in centre
+#: and width is below this fraction of the width; the step is then applied
+#: without a further evaluation (its error is second order, ~1e-14) and the
+#: covariance is the one at the last evaluated point, first order in the step.
+BATCH_XTOL = 1e-7
 
-def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int) -> BatchGaussianFit:
-    """:func:`fit_gaussians_batch` on one chunk of validated rows."""
+
+def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise dot products of ``(n, m)`` arrays; ``b`` may be one shared row ``(1, m)``."""
+    if b.shape[0] == 1 and a.shape[0] != 1:
+        return a @ b[0]
+    return np.einsum("ij,ij->i", a, b)
+
+
+def _batch_start(t: np.ndarray, y: np.ndarray, n_base: int) -> np.ndarray:
+    """Cheap model-free start ``(A, mu, s, b0[, b1])`` of the batch fitter, scaled coordinates.
+
+    As :func:`start_values` (half-maximum centre and width above an edge
+    baseline) but with the *mean* of the outer ``EDGE_FRACTION`` of the points
+    on each side instead of the median: the variable-projection fit needs only
+    the centre and width, and the mean is a tenth of the cost.  ``t`` may be one
+    shared row ``(1, m)``.
+    """
+    m = y.shape[1]
+    ne = max(2, int(round(EDGE_FRACTION * m)))
+    yl, yr = y[:, :ne].mean(1), y[:, -ne:].mean(1)
+    if n_base == 2:
+        tl, tr = t[:, :ne].mean(1), t[:, -ne:].mean(1)
+        b1 = (yr - yl) / (tr - tl)
+        b0 = yl - b1 * tl
+        yb = y - b0[:, None]
+        yb -= b1[:, None] * t
+    else:
+        b1 = np.zeros(len(y))
+        b0 = 0.5 * (yl + yr)
+        yb = y - b0[:, None]
+    amp = yb.max(axis=1)
+    wy = np.where(yb > 0.5 * amp[:, None], yb, 0.0)
+    mu = _rowdot(wy, t) / np.maximum(wy.sum(1), 1e-300)
+    above = (wy > 0).astype(float)
+    width = _rowdot(above, _spacing(t))
+    sig = np.maximum(width / FWHM_PER_SIGMA, 0.5 * np.diff(t, axis=1).min(axis=1))
+    return np.stack([amp, mu, sig, b0] + ([b1] if n_base == 2 else []), axis=1)
+
+
+class _VarProGaussian:
+    """Gaussian-plus-baseline least squares of many profiles by variable projection.
+
+    For a given centre and width the amplitude and baseline enter linearly, so
+    they are solved in closed form and only ``(mu, s)`` is iterated (G. H. Golub
+    & V. Pereyra, "The differentiation of pseudo-inverses and nonlinear least
+    squares problems whose variables separate", SIAM J. Numer. Anal. 10, 413
+    (1973)).  The step is L. Kaufman's ("A variable projection method for solving
+    separable nonlinear least squares problems", BIT 15, 49 (1975)): at the
+    linear optimum it equals the ``(mu, s)`` part of a full Gauss-Newton step, so
+    the full ``J^T J`` of the five-parameter problem is built (for the step, for
+    the covariance, and for the linear parameters' own correction in the last
+    step).
+
+    The data are replaced once by their residual ``yt`` from a straight-line (or
+    constant) fit, which is orthogonal to the baseline columns; then
+    ``A = sum(g yt) / |g_perp|^2`` and ``cost = |yt|^2 - A sum(g yt)``.  Every
+    evaluation needs one exponential and twelve row sums of products of
+    ``g, g z, g z^2`` (``z = (t - mu) / s``) with each other, ``z`` and ``yt``;
+    cross terms with the ``t`` column follow from ``t = mu + s z``.
+    """
+
+    def __init__(self, t: np.ndarray, y: np.ndarray, n_base: int):
+        self.t, self.n_base = t, n_base
+        self.k = 3 + n_base
+        m = y.shape[1]
+        self.m = m
+        if n_base == 2:
+            st, stt = t.sum(1), _rowdot(t, t)
+            det = m * stt - st * st
+            sy, sty = y.sum(1), _rowdot(y, t)
+            beta1 = (m * sty - st * sy) / det
+            beta0 = (sy - beta1 * st) / m
+            yt = y - beta0[:, None]
+            yt -= beta1[:, None] * t
+            # inverse of the baseline block [[m, st], [st, stt]]
+            self.st, self.stt = st, stt
+            self.i00, self.i01, self.i11 = stt / det, -st / det, m / det
+            self.beta = (beta0, beta1)
+        else:
+            beta0 = y.mean(1)
+            yt = y - beta0[:, None]
+            self.beta = (beta0,)
+        self.y, self.yt = y, yt
+        self.syy = _rowdot(yt, yt)
+
+    def _rows(self, a: np.ndarray, rows: np.ndarray | None):
+        if rows is None or a.shape[0] == 1:
+            return a
+        return a[rows]
+
+    def evaluate(self, mu: np.ndarray, s: np.ndarray, rows: np.ndarray | None = None):
+        """At ``(mu, s)`` of ``rows`` (None: all): params ``(n, k)``, cost, ``J^T J`` and ``J^T r``."""
+        t, yt = self._rows(self.t, rows), self._rows(self.yt, rows)
+        n, m = len(mu), self.m
+        inv_s = 1.0 / s
+        # z = (t - mu) / s and, in one work buffer, g = exp(-z^2/2), g z, g z^2
+        z = t - mu[:, None]
+        z *= inv_s[:, None]
+        buf = np.empty((3, n, m))
+        g, gz, gz2 = buf
+        np.multiply(z, -0.5, out=g)
+        g *= z
+        np.exp(g, out=g)
+        np.multiply(g, z, out=gz)
+        np.multiply(gz, z, out=gz2)
+        # row sums of g z^k (k = 0..3), g^2 z^k (k = 0..4) and g z^k yt (k = 0..2)
+        s0, s1, s2 = buf.sum(axis=2)
+        s3 = np.einsum("ij,ij->i", gz2, z)
+        q0, q1, q2 = np.einsum("kij,ij->ki", buf, g)
+        q3, q4 = np.einsum("kij,ij->ki", buf[1:], gz2)
+        y0, y1, y2 = np.einsum("kij,ij->ki", buf, yt)
+        if self.n_base == 2:
+            st, stt = self._rows(self.st, rows), self._rows(self.stt, rows)
+            i00, i01, i11 = (self._rows(v, rows) for v in (self.i00, self.i01, self.i11))
+            # g t, g z t, g z^2 t from t = mu + s z
+            u1, v1, w1 = mu * s0 + s * s1, mu * s1 + s * s2, mu * s2 + s * s3
+            # baseline part of g: c = M_b^-1 (sum g, sum g t); |g_perp|^2 = q0 - (sum g, sum g t) . c
+            c0, c1 = i00 * s0 + i01 * u1, i01 * s0 + i11 * u1
+            d = q0 - (s0 * c0 + u1 * c1)
+        else:
+            c0 = s0 / m
+            d = q0 - s0 * c0
+        amp = y0 / d
+        cost = self._rows(self.syy, rows) - amp * y0
+        a = amp * inv_s
+        # J^T r for r = model - y, zero in the linear parameters at their optimum:
+        # sum g z^j r = A sum g^2 z^j + b0' sum g z^j (+ b1' sum g z^j t) - sum g z^j yt, b' = -A c
+        r1 = q1 - c0 * s1
+        r2 = q2 - c0 * s2
+        zero = np.zeros(n)
+        # J columns: g, a g z, a g z^2, 1[, t]
+        if self.n_base == 2:
+            r1 = a * (amp * (r1 - c1 * v1) - y1)
+            r2 = a * (amp * (r2 - c1 * w1) - y2)
+            au1, av1, aw1 = u1, a * v1, a * w1
+            a1, a2, a3, aa2, aa3 = a * q1, a * q2, a * s1, a * a * q2, a * a * q3
+            a4 = a * s2
+            aa4 = a * a * q4
+            mm = np.full(n, float(m))
+            stn, sttn = np.broadcast_to(st, (n,)), np.broadcast_to(stt, (n,))
+            jtj = np.stack([
+                q0, a1, a2, s0, au1,
+                a1, aa2, aa3, a3, av1,
+                a2, aa3, aa4, a4, aw1,
+                s0, a3, a4, mm, stn,
+                au1, av1, aw1, stn, sttn,
+            ], axis=1).reshape(n, 5, 5)
+            b = self._rows(self.beta[1], rows) - amp * c1
+            params = np.stack([amp, mu, s, self._rows(self.beta[0], rows) - amp * c0, b], axis=1)
+            grad = np.stack([zero, r1, r2, zero, zero], axis=1)
+        else:
+            r1 = a * (amp * r1 - y1)
+            r2 = a * (amp * r2 - y2)
+            a1, a2, a3, aa2, aa3 = a * q1, a * q2, a * s1, a * a * q2, a * a * q3
+            a4 = a * s2
+            aa4 = a * a * q4
+            mm = np.full(n, float(m))
+            jtj = np.stack([
+                q0, a1, a2, s0,
+                a1, aa2, aa3, a3,
+                a2, aa3, aa4, a4,
+                s0, a3, a4, mm,
+            ], axis=1).reshape(n, 4, 4)
+            params = np.stack([amp, mu, s, self._rows(self.beta[0], rows) - amp * c0], axis=1)
+            grad = np.stack([zero, r1, r2, zero], axis=1)
+        return params, cost, jtj, grad
+
+    def explicit_cost(self, params: np.ndarray, rows: np.ndarray) -> np.ndarray:
+        """Sum of squared residuals computed point by point (for nearly exact fits)."""
+        t, y = self._rows(self.t, rows), self.y[rows]
+        p = params
+        z = (t - p[:, 1:2]) / p[:, 2:3]
+        r = p[:, 0:1] * np.exp(-0.5 * z * z) + p[:, 3:4] - y
+        if self.n_base == 2:
+            r += p[:, 4:5] * t
+        return _rowdot(r, r)
+
+
+def _solve_stacked(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a x = b`` for stacked small systems; NaN rows where a system is singular."""
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        try:
+            return np.linalg.solve(a, b[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            out = np.full(b.shape, np.nan)
+            for i in range(len(a)):
+                try:
+                    out[i] = np.linalg.solve(a[i], b[i])
+                except np.linalg.LinAlgError:
+                    pass
+            return out
+
+
+def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, p0: np.ndarray, *, xtol: float = BATCH_XTOL, max_iter: int = 100):
+    """Solve the Gaussian-plus-baseline fits of all rows by variable projection.
+
+    A damped Gauss-Newton (Levenberg-Marquardt) iteration over ``(mu, s)``, each
+    profile with its own damping; see :class:`_VarProGaussian`.  Returns
+    ``(params, cost, jtj, converged, n_evaluations)`` in scaled coordinates with
+    ``jtj`` the full ``J^T J`` at the last evaluated point.
+    """
+    vp = _VarProGaussian(t, y, n_base)
+    n, k = len(y), vp.k
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        p, cost, jtj, grad = vp.evaluate(p0[:, 1].copy(), p0[:, 2].copy())
+    n_eval = 1
+    # rounding bound of cost = |yt|^2 - A sum(g yt): a rise below it is not a rise
+    tol = 64.0 * np.finfo(float).eps * vp.syy
+    lam = np.full(n, 1e-3)
+    converged = np.zeros(n, dtype=bool)
+    active = np.isfinite(cost) & np.all(np.isfinite(jtj), axis=(1, 2))
+    eye = np.eye(k)
+    for _ in range(max_iter):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        ka, ga = (jtj, grad) if idx.size == n else (jtj[idx], grad[idx])
+        diag = np.diagonal(ka, axis1=1, axis2=2)
+        step = _solve_stacked(ka + lam[idx, None, None] * diag[:, :, None] * eye, -ga)
+        finite = np.all(np.isfinite(step), axis=1)
+        active[idx[~finite]] = False  # singular normal equations: leave as not converged
+        pa = p[idx]
+        with np.errstate(invalid="ignore"):
+            small = finite & (lam[idx] < 1.0) & np.all(np.abs(step[:, 1:3]) <= xtol * np.abs(pa[:, 2:3]), axis=1)
+        if small.any():
+            rows = idx[small]
+            p[rows] = pa[small] + step[small]
+            converged[rows] = True
+            active[rows] = False
+        go = finite & ~small
+        if not go.any():
+            break
+        idx, pa, step = idx[go], pa[go], step[go]
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            p_new, cost_new, jtj_new, grad_new = vp.evaluate(pa[:, 1] + step[:, 1], pa[:, 2] + step[:, 2], idx)
+        n_eval += 1
+        better = np.isfinite(cost_new) & (cost_new <= cost[idx] + tol[idx]) & np.all(np.isfinite(jtj_new), axis=(1, 2))
+        acc = idx[better]
+        p[acc], cost[acc], jtj[acc], grad[acc] = p_new[better], cost_new[better], jtj_new[better], grad_new[better]
+        lam[acc] = np.maximum(lam[acc] * 0.1, 1e-12)
+        rej = idx[~better]
+        lam[rej] *= 10.0
+        stuck = rej[lam[rej] > 1e16]
+        active[stuck] = False
+        converged[stuck] = True  # no further descent possible: a (local) minimum
+    # the cost formula cancels for nearly exact fits: recompute those point by point
+    exact = np.flatnonzero(np.isfinite(cost) & (cost < 1e-6 * vp.syy))
+    if exact.size:
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            cost[exact] = vp.explicit_cost(p[exact], exact)
+    return p, cost, jtj, converged, n_eval
+
+
+def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int, shared: bool = False) -> BatchGaussianFit:
+    """:func:`fit_gaussians_batch` on one chunk of validated rows (``shared``: all rows have the same positions)."""
     n, m = y.shape
     k = 3 + n_base
     dof = m - k
@@ -1438,46 +1697,11 @@ def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int) -> BatchGaus
         rows, params, cov, reasons = _physical_rows(x, x[:, 0], np.ones(n), np.ones(n), nan, np.full((n, k, k), np.nan), np.full(n, np.nan), np.full(n, np.nan), dof, np.zeros(n, bool), [msg] * n, n_base)
         return BatchGaussianFit(params, cov, rows["x_ref"], rows["chi2_red"], rows["residual_rms"], rows["ok"], tuple(reasons), rows)
     x_ref, h, s = _scales(x, y)
-    t = (x - x_ref[:, None]) / h[:, None]
+    # scaled positions: one shared row when all profiles share the positions
+    t = (x[:1] - x_ref[:1, None]) / h[:1, None] if shared else (x - x_ref[:, None]) / h[:, None]
     yn = y / s[:, None]
-    p0 = start_values(t, yn, baseline=BASELINES[n_base - 1])
-
-    # constant blocks of J^T J: the baseline columns 1 and t do not depend on p
-    sum_t, sum_t2 = t.sum(1), (t * t).sum(1)
-    iu = np.triu_indices(k, 1)
-
-    def normal_eq(p, rows):
-        """Cost, J^T J and J^T r of the Gaussian + baseline model, using its structure."""
-        tt, yy = (t, yn) if len(rows) == n else (t[rows], yn[rows])
-        inv_s = 1.0 / p[:, 2:3]
-        z = (tt - p[:, 1:2]) * inv_s
-        gj = np.empty((len(rows), 3, m))  # the three Gaussian Jacobian rows
-        np.exp(-0.5 * z * z, out=gj[:, 0])
-        ag = p[:, 0:1] * gj[:, 0]
-        np.multiply(ag * z, inv_s, out=gj[:, 1])
-        np.multiply(gj[:, 1], z, out=gj[:, 2])
-        r = ag + p[:, 3:4]
-        if n_base == 2:
-            r += p[:, 4:5] * tt
-        r -= yy
-        jtj = np.empty((len(rows), k, k))
-        jtj[:, :3, :3] = np.matmul(gj, gj.transpose(0, 2, 1))
-        jtj[:, :3, 3] = gj.sum(axis=2)
-        jtj[:, 3, 3] = m
-        grad = np.empty((len(rows), k))
-        grad[:, :3] = np.matmul(gj, r[:, :, None])[:, :, 0]
-        grad[:, 3] = r.sum(1)
-        if n_base == 2:
-            jtj[:, :3, 4] = np.matmul(gj, tt[:, :, None])[:, :, 0]
-            jtj[:, 3, 4] = sum_t[rows]
-            jtj[:, 4, 4] = sum_t2[rows]
-            grad[:, 4] = np.einsum("ij,ij->i", tt, r)
-        # mirror the upper triangle
-        jtj[:, iu[1], iu[0]] = jtj[:, iu[0], iu[1]]
-        return np.einsum("ij,ij->i", r, r), jtj, grad
-
-    lm = levenberg_marquardt_batch(normal_eq, p0, initial_damping=1e-4, ftol=1e-11)
-    p, conv, cost, jtj = lm.params, lm.converged, lm.cost, lm.jtj
+    p0 = _batch_start(t, yn, n_base)
+    p, cost, jtj, conv, _ = _gauss_varpro_batch(t, yn, n_base, p0)
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         try:
             cov_int = np.linalg.inv(jtj) * (cost / dof)[:, None, None]
@@ -1529,10 +1753,11 @@ def fit_profiles_batch(
     x, y = _check_batch(position_m, signals)
     if len(y) == 0:
         return []
+    shared = np.ndim(position_m) == 1
     out: list[ProfileResult] = []
     for i in range(0, len(y), BATCH_CHUNK):
         xc, yc = np.ascontiguousarray(x[i : i + BATCH_CHUNK]), y[i : i + BATCH_CHUNK]
-        fit = _fit_gaussians_chunk(xc, yc, n_base)
+        fit = _fit_gaussians_chunk(xc, yc, n_base, shared)
         too_few = np.full(len(yc), yc.shape[1] < 3 + n_base + 2)
         g = fit.rows
         out.extend(_assemble_rows(xc, yc, g, _gauss_shape_rows(g, xc, list(fit.message)), "gaussian", baseline, window_n_sigma, snr_min, too_few))
