@@ -231,11 +231,37 @@ class _Progress:
         self.stream.flush()
 
 
+def _code_version() -> str:
+    import diagnostics
+
+    return diagnostics.__version__
+
+
+def _check_worker_versions(client: Any) -> None:
+    """Refuse a cluster whose workers run another beamdiag version (their rows would differ)."""
+    import diagnostics
+
+    versions = client.run(_code_version)
+    if not versions:
+        raise InputError(f"reanalyze: --scheduler {client.scheduler.address}: the cluster has no workers")
+    wrong = {w: v for w, v in versions.items() if v != diagnostics.__version__}
+    if wrong:
+        worker, version = next(iter(wrong.items()))
+        raise InputError(f"reanalyze: worker {worker} runs beamdiag {version}, this is {diagnostics.__version__} "
+                         "(install the same version on every worker)")
+
+
 def _start_client(scheduler: str | None, workers: int) -> tuple[Any, Any, str]:
     from distributed import Client, LocalCluster
 
     if scheduler:
-        return Client(scheduler), None, scheduler
+        client = Client(scheduler)
+        try:
+            _check_worker_versions(client)
+        except BaseException:
+            client.close()
+            raise
+        return client, None, scheduler
     cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None)
     return Client(cluster), cluster, f"local:{workers}"
 

@@ -118,14 +118,22 @@ def test_local_cluster_of_two_workers_gives_records_identical_to_serial(archive)
 
 
 @pytest.mark.slow
-def test_external_scheduler_address_is_used(archive):
-    """--scheduler ADDRESS: tasks go to an existing cluster (here a LocalCluster we start)."""
+def test_external_scheduler_address_is_used(archive, monkeypatch):
+    """--scheduler ADDRESS: tasks go to an existing cluster (here a LocalCluster we start);
+    a cluster whose workers run another beamdiag version is refused."""
     from distributed import LocalCluster
+
+    import diagnostics
 
     store, _ = archive
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
         summary, records = reanalysis.reanalyze(store, kind="frames", scheduler=cluster.scheduler_address,
                                                 write=False, progress=False)
+        with monkeypatch.context() as m:
+            m.setattr(diagnostics, "__version__", "0.0.0-other")
+            with pytest.raises(InputError, match=r"worker tcp://\S+ runs beamdiag \S+, this is 0.0.0-other"):
+                reanalysis.reanalyze(store, kind="frames", scheduler=cluster.scheduler_address, write=False,
+                                     progress=False)
     assert summary.scheduler == cluster.scheduler_address
     _s, serial = reanalysis.reanalyze(store, kind="frames", serial=True, write=False, progress=False)
     differ = [(a["frame_id"], k, a[k], b.get(k)) for a, b in zip(records, serial, strict=True)
