@@ -1425,7 +1425,7 @@ def fit_gaussians_batch(position_m, signals, *, baseline: str = "linear") -> Bat
 
 #: Profiles per chunk in the batch routines: small enough that the working
 #: arrays (chunk x points) stay in the CPU cache.
-BATCH_CHUNK = 128
+BATCH_CHUNK = 256
 
 #: The batch Gauss-Newton iteration of a profile stops when its step in centre
 #: and width is below this fraction of the width; the step is then applied
@@ -1441,14 +1441,14 @@ def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", a, b)
 
 
-def _batch_start(t: np.ndarray, y: np.ndarray, n_base: int) -> np.ndarray:
-    """Cheap model-free start ``(A, mu, s, b0[, b1])`` of the batch fitter, scaled coordinates.
+def _batch_start(t: np.ndarray, y: np.ndarray, n_base: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cheap model-free start ``(mu, s)`` of the batch fitter, scaled coordinates.
 
     As :func:`start_values` (half-maximum centre and width above an edge
     baseline) but with the *mean* of the outer ``EDGE_FRACTION`` of the points
     on each side instead of the median: the variable-projection fit needs only
-    the centre and width, and the mean is a tenth of the cost.  ``t`` may be one
-    shared row ``(1, m)``.
+    the centre and width, and the mean costs a fraction of the median.  ``t`` may
+    be one shared row ``(1, m)``.
     """
     m = y.shape[1]
     ne = max(2, int(round(EDGE_FRACTION * m)))
@@ -1456,20 +1456,28 @@ def _batch_start(t: np.ndarray, y: np.ndarray, n_base: int) -> np.ndarray:
     if n_base == 2:
         tl, tr = t[:, :ne].mean(1), t[:, -ne:].mean(1)
         b1 = (yr - yl) / (tr - tl)
-        b0 = yl - b1 * tl
-        yb = y - b0[:, None]
+        yb = y - (yl - b1 * tl)[:, None]
         yb -= b1[:, None] * t
     else:
-        b1 = np.zeros(len(y))
-        b0 = 0.5 * (yl + yr)
-        yb = y - b0[:, None]
-    amp = yb.max(axis=1)
-    wy = np.where(yb > 0.5 * amp[:, None], yb, 0.0)
-    mu = _rowdot(wy, t) / np.maximum(wy.sum(1), 1e-300)
-    above = (wy > 0).astype(float)
-    width = _rowdot(above, _spacing(t))
+        yb = y - (0.5 * (yl + yr))[:, None]
+    half = 0.5 * yb.max(axis=1)
+    above = yb > half[:, None]
+    wy = np.where(above, yb, 0.0)
+    if t.shape[0] == 1:
+        tot, mom = wy @ np.ones(m), wy @ t[0]
+        width = above @ _spacing(t[0])
+    else:
+        tot, mom = wy.sum(1), np.einsum("ij,ij->i", wy, t)
+        width = np.einsum("ij,ij->i", above, _spacing(t))
+    mu = mom / np.maximum(tot, 1e-300)
     sig = np.maximum(width / FWHM_PER_SIGMA, 0.5 * np.diff(t, axis=1).min(axis=1))
-    return np.stack([amp, mu, sig, b0] + ([b1] if n_base == 2 else []), axis=1)
+    return mu, sig
+
+
+#: Columns of the per-profile row sums kept by the batch fitter at its current point:
+#: ``mu, s``; ``sum g z^k`` (k = 0..2); ``sum g z^k t`` (k = 0..2); ``sum g^2 z^k`` (k = 0..4);
+#: ``sum g z^k yt`` (k = 0..2), with ``g = exp(-z^2/2)``, ``z = (t - mu)/s``.
+_SUMS = ("mu", "s", "s0", "s1", "s2", "u0", "u1", "u2", "q0", "q1", "q2", "q3", "q4", "y0", "y1", "y2")
 
 
 class _VarProGaussian:
@@ -1481,26 +1489,30 @@ class _VarProGaussian:
     squares problems whose variables separate", SIAM J. Numer. Anal. 10, 413
     (1973)).  The step is L. Kaufman's ("A variable projection method for solving
     separable nonlinear least squares problems", BIT 15, 49 (1975)): at the
-    linear optimum it equals the ``(mu, s)`` part of a full Gauss-Newton step, so
-    the full ``J^T J`` of the five-parameter problem is built (for the step, for
-    the covariance, and for the linear parameters' own correction in the last
-    step).
+    linear optimum it equals the ``(mu, s)`` part of a full Gauss-Newton step of
+    the five-parameter problem, i.e. the 2x2 Schur complement of its ``J^T J``.
 
     The data are replaced once by their residual ``yt`` from a straight-line (or
-    constant) fit, which is orthogonal to the baseline columns; then
-    ``A = sum(g yt) / |g_perp|^2`` and ``cost = |yt|^2 - A sum(g yt)``.  Every
-    evaluation needs one exponential and twelve row sums of products of
-    ``g, g z, g z^2`` (``z = (t - mu) / s``) with each other, ``z`` and ``yt``;
-    cross terms with the ``t`` column follow from ``t = mu + s z``.
+    constant) fit, orthogonal to the baseline columns.  Every inner product then
+    needs only row sums of ``g, g z, g z^2`` against ``1, t, g, g z, g z^2, yt``
+    (:data:`_SUMS`): one exponential, and for shared positions the map to ``z``
+    and the sums against ``1`` and ``t`` done by BLAS.  Writing ``P_ij`` for the inner
+    products of ``phi = (g, g z, g z^2)`` with the baseline projected out,
+    ``A = sum(g yt) / P_00``, ``cost = |yt|^2 - A sum(g yt)`` and the step solves
+    ``a^2 (P_ab - P_a0 P_0b / P_00) d_b = -a (A P_a0 - sum(phi_a yt))``,
+    ``a = A / s``, ``a, b`` in ``{1, 2}``.
     """
 
     def __init__(self, t: np.ndarray, y: np.ndarray, n_base: int):
-        self.t, self.n_base = t, n_base
-        self.k = 3 + n_base
+        self.t, self.n_base, self.k = t, n_base, 3 + n_base
         m = y.shape[1]
         self.m = m
+        self.shared = t.shape[0] == 1
+        if self.shared:
+            # rows [1, t] for the BLAS map to z and the plain sums
+            self.basis = np.stack([np.ones(m), t[0]])
+        st, stt = t.sum(1), _rowdot(t, t)
         if n_base == 2:
-            st, stt = t.sum(1), _rowdot(t, t)
             det = m * stt - st * st
             sy, sty = y.sum(1), _rowdot(y, t)
             beta1 = (m * sty - st * sy) / det
@@ -1508,13 +1520,13 @@ class _VarProGaussian:
             yt = y - beta0[:, None]
             yt -= beta1[:, None] * t
             # inverse of the baseline block [[m, st], [st, stt]]
-            self.st, self.stt = st, stt
             self.i00, self.i01, self.i11 = stt / det, -st / det, m / det
             self.beta = (beta0, beta1)
         else:
             beta0 = y.mean(1)
             yt = y - beta0[:, None]
             self.beta = (beta0,)
+        self.st, self.stt = st, stt
         self.y, self.yt = y, yt
         self.syy = _rowdot(yt, yt)
 
@@ -1523,82 +1535,113 @@ class _VarProGaussian:
             return a
         return a[rows]
 
-    def evaluate(self, mu: np.ndarray, s: np.ndarray, rows: np.ndarray | None = None):
-        """At ``(mu, s)`` of ``rows`` (None: all): params ``(n, k)``, cost, ``J^T J`` and ``J^T r``."""
-        t, yt = self._rows(self.t, rows), self._rows(self.yt, rows)
+    def sums(self, mu: np.ndarray, s: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+        """The row sums :data:`_SUMS` at ``(mu, s)`` of ``rows`` (None: all), shape ``(n, 16)``."""
+        yt = self._rows(self.yt, rows)
         n, m = len(mu), self.m
         inv_s = 1.0 / s
-        # z = (t - mu) / s and, in one work buffer, g = exp(-z^2/2), g z, g z^2
-        z = t - mu[:, None]
-        z *= inv_s[:, None]
+        out = np.empty((n, len(_SUMS)))
+        out[:, 0], out[:, 1] = mu, s
         buf = np.empty((3, n, m))
         g, gz, gz2 = buf
+        if self.shared:
+            # z = t/s - mu/s as an (n, 2) coefficient map of the rows [1, t] (one BLAS pass)
+            z = np.stack([-mu * inv_s, inv_s], axis=1) @ self.basis
+        else:
+            z = self.t if rows is None else self.t[rows]
+            z = (z - mu[:, None]) * inv_s[:, None]
         np.multiply(z, -0.5, out=g)
         g *= z
         np.exp(g, out=g)
         np.multiply(g, z, out=gz)
         np.multiply(gz, z, out=gz2)
-        # row sums of g z^k (k = 0..3), g^2 z^k (k = 0..4) and g z^k yt (k = 0..2)
-        s0, s1, s2 = buf.sum(axis=2)
-        s3 = np.einsum("ij,ij->i", gz2, z)
-        q0, q1, q2 = np.einsum("kij,ij->ki", buf, g)
-        q3, q4 = np.einsum("kij,ij->ki", buf[1:], gz2)
-        y0, y1, y2 = np.einsum("kij,ij->ki", buf, yt)
+        flat = buf.reshape(3 * n, m)
+        if self.shared:
+            out[:, 2:5] = (flat @ self.basis[0]).reshape(3, n).T
+            out[:, 5:8] = (flat @ self.basis[1]).reshape(3, n).T
+        else:
+            t = self.t if rows is None else self.t[rows]
+            out[:, 2:5] = buf.sum(axis=2).T
+            out[:, 5:8] = np.einsum("kij,ij->ki", buf, t).T
+        out[:, 8:11] = np.einsum("kij,ij->ki", buf, g).T
+        out[:, 11:13] = np.einsum("kij,ij->ki", buf[1:], gz2).T
+        out[:, 13:16] = np.einsum("kij,ij->ki", buf, yt).T
+        return out
+
+    def derived(self, sm: np.ndarray, rows: np.ndarray | None = None) -> dict:
+        """Linear parameters, cost, reduced Gauss-Newton matrix and gradient from row sums."""
+        mu, s, s0, s1, s2, u0, u1, u2, q0, q1, q2, q3, q4, y0, y1, y2 = sm.T
         if self.n_base == 2:
-            st, stt = self._rows(self.st, rows), self._rows(self.stt, rows)
             i00, i01, i11 = (self._rows(v, rows) for v in (self.i00, self.i01, self.i11))
-            # g t, g z t, g z^2 t from t = mu + s z
-            u1, v1, w1 = mu * s0 + s * s1, mu * s1 + s * s2, mu * s2 + s * s3
-            # baseline part of g: c = M_b^-1 (sum g, sum g t); |g_perp|^2 = q0 - (sum g, sum g t) . c
-            c0, c1 = i00 * s0 + i01 * u1, i01 * s0 + i11 * u1
-            d = q0 - (s0 * c0 + u1 * c1)
+            # c_j = M_b^-1 (sum phi_j, sum phi_j t): baseline part of phi_j
+            c = [(i00 * a + i01 * b, i01 * a + i11 * b) for a, b in ((s0, u0), (s1, u1), (s2, u2))]
+            sig = [(s0, u0), (s1, u1), (s2, u2)]
+
+            def proj(qij, i, j):
+                return qij - (sig[i][0] * c[j][0] + sig[i][1] * c[j][1])
         else:
-            c0 = s0 / m
-            d = q0 - s0 * c0
-        amp = y0 / d
-        cost = self._rows(self.syy, rows) - amp * y0
-        a = amp * inv_s
-        # J^T r for r = model - y, zero in the linear parameters at their optimum:
-        # sum g z^j r = A sum g^2 z^j + b0' sum g z^j (+ b1' sum g z^j t) - sum g z^j yt, b' = -A c
-        r1 = q1 - c0 * s1
-        r2 = q2 - c0 * s2
-        zero = np.zeros(n)
-        # J columns: g, a g z, a g z^2, 1[, t]
+            c = [(s0 / self.m, None), (s1 / self.m, None), (s2 / self.m, None)]
+            sig = [(s0, None), (s1, None), (s2, None)]
+
+            def proj(qij, i, j):
+                return qij - sig[i][0] * c[j][0]
+
+        p00, p01, p02 = proj(q0, 0, 0), proj(q1, 0, 1), proj(q2, 0, 2)
+        p11, p12, p22 = proj(q2, 1, 1), proj(q3, 1, 2), proj(q4, 2, 2)
+        amp = y0 / p00
+        a = amp / s
+        h11 = a * a * (p11 - p01 * p01 / p00)
+        h12 = a * a * (p12 - p01 * p02 / p00)
+        h22 = a * a * (p22 - p02 * p02 / p00)
+        return {
+            "amp": amp, "a": a, "cost": self._rows(self.syy, rows) - amp * y0, "c": c, "p00": p00, "p01": p01, "p02": p02,
+            "h11": h11, "h12": h12, "h22": h22, "g1": a * (amp * p01 - y1), "g2": a * (amp * p02 - y2),
+        }
+
+    def params(self, sm: np.ndarray, dv: dict, step: np.ndarray | None = None) -> np.ndarray:
+        """Scaled parameters ``(A, mu, s, b0[, b1])`` at the sums' point, plus a ``(mu, s)`` step.
+
+        The linear parameters follow the step to first order (their Gauss-Newton
+        part, the least-squares fit of ``-J_(mu,s) step`` by ``g`` and the baseline).
+        """
+        amp, c = dv["amp"], dv["c"]
+        b0 = self.beta[0] - amp * c[0][0]
+        cols = [amp, sm[:, 0], sm[:, 1], b0]
         if self.n_base == 2:
-            r1 = a * (amp * (r1 - c1 * v1) - y1)
-            r2 = a * (amp * (r2 - c1 * w1) - y2)
-            au1, av1, aw1 = u1, a * v1, a * w1
-            a1, a2, a3, aa2, aa3 = a * q1, a * q2, a * s1, a * a * q2, a * a * q3
-            a4 = a * s2
-            aa4 = a * a * q4
-            mm = np.full(n, float(m))
-            stn, sttn = np.broadcast_to(st, (n,)), np.broadcast_to(stt, (n,))
-            jtj = np.stack([
-                q0, a1, a2, s0, au1,
-                a1, aa2, aa3, a3, av1,
-                a2, aa3, aa4, a4, aw1,
-                s0, a3, a4, mm, stn,
-                au1, av1, aw1, stn, sttn,
-            ], axis=1).reshape(n, 5, 5)
-            b = self._rows(self.beta[1], rows) - amp * c1
-            params = np.stack([amp, mu, s, self._rows(self.beta[0], rows) - amp * c0, b], axis=1)
-            grad = np.stack([zero, r1, r2, zero, zero], axis=1)
-        else:
-            r1 = a * (amp * r1 - y1)
-            r2 = a * (amp * r2 - y2)
-            a1, a2, a3, aa2, aa3 = a * q1, a * q2, a * s1, a * a * q2, a * a * q3
-            a4 = a * s2
-            aa4 = a * a * q4
-            mm = np.full(n, float(m))
-            jtj = np.stack([
-                q0, a1, a2, s0,
-                a1, aa2, aa3, a3,
-                a2, aa3, aa4, a4,
-                s0, a3, a4, mm,
-            ], axis=1).reshape(n, 4, 4)
-            params = np.stack([amp, mu, s, self._rows(self.beta[0], rows) - amp * c0], axis=1)
-            grad = np.stack([zero, r1, r2, zero], axis=1)
-        return params, cost, jtj, grad
+            cols.append(self.beta[1] - amp * c[0][1])
+        p = np.stack(cols, axis=1)
+        if step is not None:
+            a, dm, ds = dv["a"], step[:, 0], step[:, 1]
+            da = -a * (dm * dv["p01"] + ds * dv["p02"]) / dv["p00"]
+            p[:, 0] += da
+            p[:, 1] += dm
+            p[:, 2] += ds
+            p[:, 3] -= a * (dm * c[1][0] + ds * c[2][0]) + da * c[0][0]
+            if self.n_base == 2:
+                p[:, 4] -= a * (dm * c[1][1] + ds * c[2][1]) + da * c[0][1]
+        return p
+
+    def jtj(self, sm: np.ndarray, amp: np.ndarray) -> np.ndarray:
+        """Full ``J^T J`` of ``(A, mu, s, b0[, b1])`` at the sums' point (J columns g, a g z, a g z^2, 1[, t])."""
+        n = len(sm)
+        _, s, s0, s1, s2, u0, u1, u2, q0, q1, q2, q3, q4, _, _, _ = sm.T
+        a = amp / s
+        aq1, aq2, as1, as2 = a * q1, a * q2, a * s1, a * s2
+        aaq2, aaq3, aaq4 = a * a * q2, a * a * q3, a * a * q4
+        mm = np.full(n, float(self.m))
+        if self.n_base == 1:
+            ent = [q0, aq1, aq2, s0, aq1, aaq2, aaq3, as1, aq2, aaq3, aaq4, as2, s0, as1, as2, mm]
+            return np.stack(ent, axis=1).reshape(n, 4, 4)
+        st, stt = np.broadcast_to(self.st, (n,)), np.broadcast_to(self.stt, (n,))
+        au1, au2 = a * u1, a * u2
+        ent = [
+            q0, aq1, aq2, s0, u0,
+            aq1, aaq2, aaq3, as1, au1,
+            aq2, aaq3, aaq4, as2, au2,
+            s0, as1, as2, mm, st,
+            u0, au1, au2, st, stt,
+        ]
+        return np.stack(ent, axis=1).reshape(n, 5, 5)
 
     def explicit_cost(self, params: np.ndarray, rows: np.ndarray) -> np.ndarray:
         """Sum of squared residuals computed point by point (for nearly exact fits)."""
@@ -1611,77 +1654,84 @@ class _VarProGaussian:
         return _rowdot(r, r)
 
 
-def _solve_stacked(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """``a x = b`` for stacked small systems; NaN rows where a system is singular."""
-    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-        try:
-            return np.linalg.solve(a, b[:, :, None])[:, :, 0]
-        except np.linalg.LinAlgError:
-            out = np.full(b.shape, np.nan)
-            for i in range(len(a)):
-                try:
-                    out[i] = np.linalg.solve(a[i], b[i])
-                except np.linalg.LinAlgError:
-                    pass
-            return out
-
-
-def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, p0: np.ndarray, *, xtol: float = BATCH_XTOL, max_iter: int = 100):
+def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, mu0: np.ndarray, s0: np.ndarray, *, xtol: float = BATCH_XTOL, max_iter: int = 100):
     """Solve the Gaussian-plus-baseline fits of all rows by variable projection.
 
-    A damped Gauss-Newton (Levenberg-Marquardt) iteration over ``(mu, s)``, each
-    profile with its own damping; see :class:`_VarProGaussian`.  Returns
-    ``(params, cost, jtj, converged, n_evaluations)`` in scaled coordinates with
-    ``jtj`` the full ``J^T J`` at the last evaluated point.
+    A damped Gauss-Newton (Levenberg-Marquardt, damping ``lambda diag(H)``)
+    iteration over ``(mu, s)``, each profile with its own damping, on the reduced
+    matrix of :class:`_VarProGaussian`.  A profile stops when its step is below
+    ``xtol`` times its width; that step is applied without a further evaluation.
+
+    Returns
+    -------
+    params : ndarray, shape (n, k)
+        Scaled ``(A, mu, s, b0[, b1])``.
+    cost : ndarray, shape (n,)
+        Sum of squared scaled residuals at the last evaluated point.
+    jtj : ndarray, shape (n, k, k)
+        Full ``J^T J`` there.
+    converged : ndarray of bool, shape (n,)
+    n_row_evaluations : int
+        Profiles times evaluations, summed.
     """
     vp = _VarProGaussian(t, y, n_base)
-    n, k = len(y), vp.k
+    n = len(y)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        p, cost, jtj, grad = vp.evaluate(p0[:, 1].copy(), p0[:, 2].copy())
-    n_eval = 1
+        sm = vp.sums(mu0, s0)
+        cost = vp.derived(sm)["cost"]
+    n_eval = n
     # rounding bound of cost = |yt|^2 - A sum(g yt): a rise below it is not a rise
     tol = 64.0 * np.finfo(float).eps * vp.syy
     lam = np.full(n, 1e-3)
     converged = np.zeros(n, dtype=bool)
-    active = np.isfinite(cost) & np.all(np.isfinite(jtj), axis=(1, 2))
-    eye = np.eye(k)
+    last_step = np.zeros((n, 2))
+    active = np.isfinite(cost)
     for _ in range(max_iter):
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        ka, ga = (jtj, grad) if idx.size == n else (jtj[idx], grad[idx])
-        diag = np.diagonal(ka, axis1=1, axis2=2)
-        step = _solve_stacked(ka + lam[idx, None, None] * diag[:, :, None] * eye, -ga)
-        finite = np.all(np.isfinite(step), axis=1)
-        active[idx[~finite]] = False  # singular normal equations: leave as not converged
-        pa = p[idx]
-        with np.errstate(invalid="ignore"):
-            small = finite & (lam[idx] < 1.0) & np.all(np.abs(step[:, 1:3]) <= xtol * np.abs(pa[:, 2:3]), axis=1)
+        full = idx.size == n
+        sa = sm if full else sm[idx]
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            dv = vp.derived(sa, None if full else idx)
+            # damped 2x2 solve, closed form
+            la = 1.0 + lam[idx]
+            h11, h22, h12 = dv["h11"] * la, dv["h22"] * la, dv["h12"]
+            det = h11 * h22 - h12 * h12
+            dm = -(h22 * dv["g1"] - h12 * dv["g2"]) / det
+            ds = -(h11 * dv["g2"] - h12 * dv["g1"]) / det
+            finite = np.isfinite(dm) & np.isfinite(ds) & (det > 0)
+            small = finite & (lam[idx] < 1.0) & (np.abs(dm) <= xtol * np.abs(sa[:, 1])) & (np.abs(ds) <= xtol * np.abs(sa[:, 1]))
+        active[idx[~finite]] = False  # singular normal equations: left as not converged
         if small.any():
             rows = idx[small]
-            p[rows] = pa[small] + step[small]
+            last_step[rows, 0], last_step[rows, 1] = dm[small], ds[small]
             converged[rows] = True
             active[rows] = False
         go = finite & ~small
         if not go.any():
             break
-        idx, pa, step = idx[go], pa[go], step[go]
+        idx = idx[go]
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            p_new, cost_new, jtj_new, grad_new = vp.evaluate(pa[:, 1] + step[:, 1], pa[:, 2] + step[:, 2], idx)
-        n_eval += 1
-        better = np.isfinite(cost_new) & (cost_new <= cost[idx] + tol[idx]) & np.all(np.isfinite(jtj_new), axis=(1, 2))
+            sm_new = vp.sums(sa[go, 0] + dm[go], sa[go, 1] + ds[go], idx)
+            cost_new = vp.derived(sm_new, idx)["cost"]
+        n_eval += idx.size
+        better = np.isfinite(cost_new) & (cost_new <= cost[idx] + tol[idx])
         acc = idx[better]
-        p[acc], cost[acc], jtj[acc], grad[acc] = p_new[better], cost_new[better], jtj_new[better], grad_new[better]
+        sm[acc], cost[acc] = sm_new[better], cost_new[better]
         lam[acc] = np.maximum(lam[acc] * 0.1, 1e-12)
         rej = idx[~better]
         lam[rej] *= 10.0
         stuck = rej[lam[rej] > 1e16]
         active[stuck] = False
         converged[stuck] = True  # no further descent possible: a (local) minimum
-    # the cost formula cancels for nearly exact fits: recompute those point by point
-    exact = np.flatnonzero(np.isfinite(cost) & (cost < 1e-6 * vp.syy))
-    if exact.size:
-        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        dv = vp.derived(sm)
+        p = vp.params(sm, dv, last_step)
+        jtj = vp.jtj(sm, dv["amp"])
+        # the cost formula cancels for nearly exact fits: recompute those point by point
+        exact = np.flatnonzero(np.isfinite(cost) & (cost < 1e-6 * vp.syy))
+        if exact.size:
             cost[exact] = vp.explicit_cost(p[exact], exact)
     return p, cost, jtj, converged, n_eval
 
@@ -1700,8 +1750,8 @@ def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int, shared: bool
     # scaled positions: one shared row when all profiles share the positions
     t = (x[:1] - x_ref[:1, None]) / h[:1, None] if shared else (x - x_ref[:, None]) / h[:, None]
     yn = y / s[:, None]
-    p0 = _batch_start(t, yn, n_base)
-    p, cost, jtj, conv, _ = _gauss_varpro_batch(t, yn, n_base, p0)
+    mu0, s0 = _batch_start(t, yn, n_base)
+    p, cost, jtj, conv, _ = _gauss_varpro_batch(t, yn, n_base, mu0, s0)
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         try:
             cov_int = np.linalg.inv(jtj) * (cost / dof)[:, None, None]
