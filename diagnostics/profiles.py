@@ -645,7 +645,7 @@ def start_values(t: np.ndarray, y: np.ndarray, *, baseline: str = "linear") -> n
     return p[0] if np.ndim(y) == 1 else p
 
 
-def _physical_rows(x, x_ref, h, s, p_int, cov_int, chi2, resid_rms, dof, ok, message, n_base):
+def _physical_rows(x, x_ref, h, s, p_int, cov_int, chi2, resid_rms, dof, ok, message, n_base, dmin=None):
     """Map scaled-coordinate Gaussian solutions back to metres and signal units, row by row.
 
     Also applies the physical checks that turn a converged fit into a failed one.
@@ -653,6 +653,7 @@ def _physical_rows(x, x_ref, h, s, p_int, cov_int, chi2, resid_rms, dof, ok, mes
     weighted chi-square in signal units and ``resid_rms`` the unweighted rms residual.  Returns a dict of
     arrays (``amplitude``, ``centroid``, ``sigma``, their errors, ``c0``, ``slope``,
     ``residual_rms``, ``ok``), ``params``/``cov`` and the list of failure reasons.
+    ``dmin``, the smallest point spacing per row, is computed from ``x`` unless given.
     """
     n = len(p_int)
     cols = [s, h, h, s] + ([s / h] if n_base == 2 else [])
@@ -666,7 +667,8 @@ def _physical_rows(x, x_ref, h, s, p_int, cov_int, chi2, resid_rms, dof, ok, mes
     amp, mu, sig = params[:, 0], params[:, 1], params[:, 2]
     lo, hi = x[:, 0], x[:, -1]
     span = hi - lo
-    dmin = np.min(np.diff(x, axis=1), axis=1)
+    if dmin is None:
+        dmin = np.min(np.diff(x, axis=1), axis=1)
     reasons = list(message)
     ok = np.array(ok, dtype=bool, copy=True)
     with np.errstate(invalid="ignore"):
@@ -1378,15 +1380,18 @@ def _check_batch(position_m, signals) -> tuple[np.ndarray, np.ndarray]:
     if y.ndim != 2:
         raise InputError(f"signals: expected shape (n_profiles, n_points), got {y.shape}")
     x = np.asarray(position_m, dtype=float)
+    x_rows = x  # one row to check when the positions are shared
     if x.ndim == 1:
         x = np.broadcast_to(x, y.shape)
     if x.shape != y.shape:
         raise InputError(f"position_m: expected shape ({y.shape[1]},) or {y.shape}, got {x.shape}")
-    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+    # a NaN or inf anywhere makes the sum non-finite; a finite sum proves all finite
+    # (only an overflowing sum of finite values needs the element-wise check)
+    if not all(np.isfinite(np.sum(a)) or np.all(np.isfinite(a)) for a in (x_rows, y)):
         raise InputError("position_m/signals: expected finite numbers, found NaN or inf")
     if y.shape[1] < 3:
         raise InputError(f"signals: expected at least 3 points per profile, got {y.shape[1]}")
-    if np.any(np.diff(x, axis=1) <= 0):
+    if np.any(np.diff(x_rows, axis=-1) <= 0):
         raise InputError("position_m: expected strictly increasing positions in every row")
     return x, y
 
@@ -1411,21 +1416,44 @@ def fit_gaussians_batch(position_m, signals, *, baseline: str = "linear") -> Bat
     """
     n_base = _check_baseline(baseline)
     x, y = _check_batch(position_m, signals)
-    shared = np.ndim(position_m) == 1
-    parts = [_fit_gaussians_chunk(x[i : i + BATCH_CHUNK], y[i : i + BATCH_CHUNK], n_base, shared) for i in range(0, len(y), BATCH_CHUNK)]
-    if len(parts) == 1:
-        return parts[0]
-    rows = {key: np.concatenate([q.rows[key] for q in parts]) for key in parts[0].rows}
-    return BatchGaussianFit(
-        np.concatenate([q.params for q in parts]), np.concatenate([q.covariance for q in parts]),
-        rows["x_ref"], rows["chi2_red"], rows["residual_rms"], rows["ok"],
-        tuple(msg for q in parts for msg in q.message), rows,
-    )
+    return _fit_gaussians_rows(x, y, n_base, np.ndim(position_m) == 1)
 
 
-#: Profiles per chunk in the batch routines: small enough that the working
-#: arrays (chunk x points) stay in the CPU cache.
+#: Profiles per chunk when :func:`fit_profiles_batch` assembles its results.
 BATCH_CHUNK = 256
+
+#: Largest ``|mu - c| / s`` in a block of shared-position profiles (``c`` the block's
+#: median centre) for which the batch fitter takes its moments from powers of the
+#: positions (precision loss about ``(25 + 3)^4 eps ~ 1e-10``); beyond, point by point.
+_POLY_MAX_OFFSET = 25.0
+
+#: The twelve raw moments of :meth:`_VarProGaussian._sums_poly`: (array, power of t),
+#: array 0 = g, 1 = g^2, 2 = g yt.
+_POLY_MOMENTS = [(0, j) for j in range(4)] + [(1, j) for j in range(5)] + [(2, j) for j in range(3)]
+_POLY_J = np.array([j for _, j in _POLY_MOMENTS])
+
+
+def _poly_terms():
+    """Index tables turning t-moments into z-moments by the binomial theorem."""
+    src, powd, coef, dst = [], [], [], []
+    for col, (w, k) in enumerate(_POLY_MOMENTS):
+        first = col - k  # column of this array's zeroth moment
+        for j in range(k + 1):
+            src.append(first + j)
+            powd.append(k - j)
+            coef.append(math.comb(k, j))
+            dst.append(col)
+        del w
+    total = np.zeros((len(_POLY_MOMENTS), len(src)))
+    total[dst, np.arange(len(src))] = 1.0
+    return np.array(src), np.array(powd), np.array(coef, dtype=float), total
+
+
+_POLY_TERM_SRC, _POLY_TERM_POW, _POLY_TERM_COEF, _POLY_TERM_SUM = _poly_terms()
+
+#: Profiles per block of the batch fitter's point-by-point work: small enough
+#: that its arrays (block x points) stay in the CPU cache.
+BATCH_BLOCK = 256
 
 #: The batch Gauss-Newton iteration of a profile stops when its step in centre
 #: and width is below this fraction of the width; the step is then applied
@@ -1439,39 +1467,6 @@ def _rowdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     if b.shape[0] == 1 and a.shape[0] != 1:
         return a @ b[0]
     return np.einsum("ij,ij->i", a, b)
-
-
-def _batch_start(t: np.ndarray, y: np.ndarray, n_base: int) -> tuple[np.ndarray, np.ndarray]:
-    """Cheap model-free start ``(mu, s)`` of the batch fitter, scaled coordinates.
-
-    As :func:`start_values` (half-maximum centre and width above an edge
-    baseline) but with the *mean* of the outer ``EDGE_FRACTION`` of the points
-    on each side instead of the median: the variable-projection fit needs only
-    the centre and width, and the mean costs a fraction of the median.  ``t`` may
-    be one shared row ``(1, m)``.
-    """
-    m = y.shape[1]
-    ne = max(2, int(round(EDGE_FRACTION * m)))
-    yl, yr = y[:, :ne].mean(1), y[:, -ne:].mean(1)
-    if n_base == 2:
-        tl, tr = t[:, :ne].mean(1), t[:, -ne:].mean(1)
-        b1 = (yr - yl) / (tr - tl)
-        yb = y - (yl - b1 * tl)[:, None]
-        yb -= b1[:, None] * t
-    else:
-        yb = y - (0.5 * (yl + yr))[:, None]
-    half = 0.5 * yb.max(axis=1)
-    above = yb > half[:, None]
-    wy = np.where(above, yb, 0.0)
-    if t.shape[0] == 1:
-        tot, mom = wy @ np.ones(m), wy @ t[0]
-        width = above @ _spacing(t[0])
-    else:
-        tot, mom = wy.sum(1), np.einsum("ij,ij->i", wy, t)
-        width = np.einsum("ij,ij->i", above, _spacing(t))
-    mu = mom / np.maximum(tot, 1e-300)
-    sig = np.maximum(width / FWHM_PER_SIGMA, 0.5 * np.diff(t, axis=1).min(axis=1))
-    return mu, sig
 
 
 #: Columns of the per-profile row sums kept by the batch fitter at its current point:
@@ -1505,30 +1500,93 @@ class _VarProGaussian:
 
     def __init__(self, t: np.ndarray, y: np.ndarray, n_base: int):
         self.t, self.n_base, self.k = t, n_base, 3 + n_base
-        m = y.shape[1]
+        n, m = y.shape
         self.m = m
         self.shared = t.shape[0] == 1
+        self.block = max(1, min(BATCH_BLOCK, n))
+        # work buffers of one block: three point-by-point arrays and z
+        self._buf = np.empty(3 * self.block * m)
+        self._zbuf = np.empty(self.block * m)
         if self.shared:
-            # rows [1, t] for the BLAS map to z and the plain sums
+            # rows [1, t] for the BLAS maps and sums
             self.basis = np.stack([np.ones(m), t[0]])
         st, stt = t.sum(1), _rowdot(t, t)
+        self.st, self.stt = st, stt
+        det = m * stt - st * st
         if n_base == 2:
-            det = m * stt - st * st
-            sy, sty = y.sum(1), _rowdot(y, t)
-            beta1 = (m * sty - st * sy) / det
-            beta0 = (sy - beta1 * st) / m
-            yt = y - beta0[:, None]
-            yt -= beta1[:, None] * t
             # inverse of the baseline block [[m, st], [st, stt]]
             self.i00, self.i01, self.i11 = stt / det, -st / det, m / det
-            self.beta = (beta0, beta1)
-        else:
-            beta0 = y.mean(1)
-            yt = y - beta0[:, None]
-            self.beta = (beta0,)
-        self.st, self.stt = st, stt
-        self.y, self.yt = y, yt
-        self.syy = _rowdot(yt, yt)
+        # yt: the data minus their least-squares line (or mean), block by block
+        self.y = y
+        self.yt = np.empty_like(y)
+        beta0, beta1, syy = np.empty(n), np.zeros(n), np.empty(n)
+        for i in range(0, n, self.block):
+            sl = slice(i, min(i + self.block, n))
+            yb, out = y[sl], self.yt[sl]
+            tb = t if self.shared else t[sl]
+            sy, sty = _rowdot(yb, np.ones((1, m))), _rowdot(yb, tb)
+            if n_base == 2:
+                d_ = det if self.shared else det[sl]
+                beta1[sl] = (m * sty - st * sy if self.shared else m * sty - st[sl] * sy) / d_
+                beta0[sl] = (sy - beta1[sl] * (st if self.shared else st[sl])) / m
+                if self.shared:
+                    np.matmul(np.stack([beta0[sl], beta1[sl]], axis=1), self.basis, out=out)
+                else:
+                    np.multiply(beta1[sl, None], tb, out=out)
+                    out += beta0[sl, None]
+                np.subtract(yb, out, out=out)
+            else:
+                beta0[sl] = sy / m
+                np.subtract(yb, beta0[sl, None], out=out)
+            syy[sl] = _rowdot(out, out)
+        self.beta = (beta0, beta1) if n_base == 2 else (beta0,)
+        self.syy = syy
+
+    def start(self) -> tuple[np.ndarray, np.ndarray]:
+        """Model-free start ``(mu, s)``: half-maximum centroid and width above an edge baseline.
+
+        As :func:`start_values`, but the edge baseline joins the *means* of the
+        outer ``EDGE_FRACTION`` of the points on each side (not their medians: the
+        fit needs only the centre and width, and the mean costs a fraction), and
+        it is taken from the detrended ``yt`` (the same line up to rounding).
+        """
+        n, m = self.yt.shape
+        ne = max(2, int(round(EDGE_FRACTION * m)))
+        t = self.t
+        spacing = _spacing(t)
+        uniform = self.shared and bool(np.allclose(spacing, spacing[0, 0], rtol=1e-9, atol=0.0))
+        dmin = np.diff(t, axis=1).min(axis=1)
+        mu0, s0 = np.empty(n), np.empty(n)
+        for i in range(0, n, self.block):
+            sl = slice(i, min(i + self.block, n))
+            yt = self.yt[sl]
+            nb = len(yt)
+            tb = t if self.shared else t[sl]
+            yl, yr = yt[:, :ne].mean(1), yt[:, -ne:].mean(1)
+            yb = self._zbuf[: nb * m].reshape(nb, m)
+            if self.n_base == 2:
+                tl, tr = tb[:, :ne].mean(1), tb[:, -ne:].mean(1)
+                b1 = (yr - yl) / (tr - tl)
+                b0 = yl - b1 * tl
+                if self.shared:
+                    np.matmul(np.stack([b0, b1], axis=1), self.basis, out=yb)
+                else:
+                    np.multiply(b1[:, None], tb, out=yb)
+                    yb += b0[:, None]
+                np.subtract(yt, yb, out=yb)
+            else:
+                np.subtract(yt, (0.5 * (yl + yr))[:, None], out=yb)
+            half = 0.5 * yb.max(axis=1)
+            above = yb > half[:, None]
+            yb *= above
+            tot, mom = _rowdot(yb, np.ones((1, m))), _rowdot(yb, tb)
+            if uniform:
+                width = np.count_nonzero(above, axis=1) * spacing[0, 0]
+            else:
+                width = _rowdot(above.astype(float), spacing if self.shared else spacing[sl])
+            mu0[sl] = mom / np.maximum(tot, 1e-300)
+            s0[sl] = np.maximum(width / FWHM_PER_SIGMA, 0.5 * (dmin if self.shared else dmin[sl]))
+        return mu0, s0
 
     def _rows(self, a: np.ndarray, rows: np.ndarray | None):
         if rows is None or a.shape[0] == 1:
@@ -1536,37 +1594,94 @@ class _VarProGaussian:
         return a[rows]
 
     def sums(self, mu: np.ndarray, s: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
-        """The row sums :data:`_SUMS` at ``(mu, s)`` of ``rows`` (None: all), shape ``(n, 16)``."""
-        yt = self._rows(self.yt, rows)
-        n, m = len(mu), self.m
-        inv_s = 1.0 / s
+        """The row sums :data:`_SUMS` at ``(mu, s)`` of ``rows`` (None: all), shape ``(n, 16)``.
+
+        Works through blocks of :data:`BATCH_BLOCK` profiles so that the
+        point-by-point arrays stay in the CPU cache.
+        """
+        n = len(mu)
         out = np.empty((n, len(_SUMS)))
         out[:, 0], out[:, 1] = mu, s
-        buf = np.empty((3, n, m))
+        for i in range(0, n, self.block):
+            j = min(i + self.block, n)
+            sel = slice(i, j) if rows is None else rows[i:j]
+            t = None if self.shared else self.t[sel]
+            self._sums_block(mu[i:j], s[i:j], self.yt[sel], t, out[i:j])
+        return out
+
+    def _sums_block(self, mu, s, yt, t, out) -> None:
+        inv_s = 1.0 / s
+        if t is None:
+            c = float(np.median(mu))
+            with np.errstate(invalid="ignore"):
+                spread = np.max(np.abs(mu - c) * inv_s) if len(mu) else 0.0
+            if spread <= _POLY_MAX_OFFSET:
+                self._sums_poly(mu, s, inv_s, c, yt, out)
+                return
+        self._sums_direct(mu, inv_s, yt, self.t if t is None else t, out)
+
+    def _sums_poly(self, mu, s, inv_s, c, yt, out) -> None:
+        """Shared positions: the z-moments from t-moments, every row sum a BLAS gemv.
+
+        With ``tc = t - c`` and ``z = tc/s - d``, ``d = (mu - c)/s``, each ``sum w z^k``
+        is the binomial sum of ``d^(k-j) sum w (tc/s)^j``; the moments of ``g``,
+        ``g^2`` and ``g yt`` against the shared powers of ``tc`` are matrix-vector
+        products.  The expansion loses about ``(|d| + 3)^4`` in relative precision,
+        hence the block's median centre and the :data:`_POLY_MAX_OFFSET` bound.
+        """
+        n, m = len(mu), self.m
+        buf = self._buf[: 3 * n * m].reshape(3, n, m)
+        g, g2, gy = buf
+        tc = self.basis[1] - c
+        d = (mu - c) * inv_s
+        # -z^2/2 = -(tc^2/s^2 - 2 d tc/s + d^2)/2, an (n, 3) map of [1, tc, tc^2]
+        coef = np.stack([-0.5 * d * d, d * inv_s, -0.5 * inv_s * inv_s], axis=1)
+        np.matmul(coef, np.stack([self.basis[0], tc, tc * tc]), out=g)
+        np.exp(g, out=g)
+        np.multiply(g, g, out=g2)
+        np.multiply(g, yt, out=gy)
+        pw = [self.basis[0], tc]
+        for _ in range(3):
+            pw.append(pw[-1] * tc)
+        # raw t-moments: g tc^0..3, g^2 tc^0..4, g yt tc^0..2 (twelve gemv)
+        raw = np.empty((12, n))
+        for col, (w, j) in enumerate(_POLY_MOMENTS):
+            np.matmul((g, g2, gy)[w], pw[j], out=raw[col])
+        # in units of s, then sum w z^k = sum_j binom(k, j) (-d)^(k-j) M_j, all twelve at once
+        ps, pd = np.empty((5, n)), np.empty((5, n))
+        ps[0], pd[0] = 1.0, 1.0
+        for j in range(1, 5):
+            np.multiply(ps[j - 1], inv_s, out=ps[j])
+            np.multiply(pd[j - 1], -d, out=pd[j])
+        mo = raw * ps[_POLY_J]
+        zm = _POLY_TERM_SUM @ (mo[_POLY_TERM_SRC] * pd[_POLY_TERM_POW] * _POLY_TERM_COEF[:, None])
+        zm = zm.T
+        gz3 = zm[:, 3]
+        out[:, 2:5] = zm[:, 0:3]
+        # sum g z^k t = mu sum g z^k + s sum g z^(k+1)
+        out[:, 5] = mu * zm[:, 0] + s * zm[:, 1]
+        out[:, 6] = mu * zm[:, 1] + s * zm[:, 2]
+        out[:, 7] = mu * zm[:, 2] + s * gz3
+        out[:, 8:16] = zm[:, 4:12]
+
+    def _sums_direct(self, mu, inv_s, yt, t, out) -> None:
+        """Point by point: z, g, g z, g z^2 and their products (any positions)."""
+        n, m = len(mu), self.m
+        buf = self._buf[: 3 * n * m].reshape(3, n, m)
+        z = self._zbuf[: n * m].reshape(n, m)
         g, gz, gz2 = buf
-        if self.shared:
-            # z = t/s - mu/s as an (n, 2) coefficient map of the rows [1, t] (one BLAS pass)
-            z = np.stack([-mu * inv_s, inv_s], axis=1) @ self.basis
-        else:
-            z = self.t if rows is None else self.t[rows]
-            z = (z - mu[:, None]) * inv_s[:, None]
+        np.subtract(t, mu[:, None], out=z)
+        z *= inv_s[:, None]
         np.multiply(z, -0.5, out=g)
         g *= z
         np.exp(g, out=g)
         np.multiply(g, z, out=gz)
         np.multiply(gz, z, out=gz2)
-        flat = buf.reshape(3 * n, m)
-        if self.shared:
-            out[:, 2:5] = (flat @ self.basis[0]).reshape(3, n).T
-            out[:, 5:8] = (flat @ self.basis[1]).reshape(3, n).T
-        else:
-            t = self.t if rows is None else self.t[rows]
-            out[:, 2:5] = buf.sum(axis=2).T
-            out[:, 5:8] = np.einsum("kij,ij->ki", buf, t).T
+        out[:, 2:5] = buf.sum(axis=2).T
+        out[:, 5:8] = np.einsum("kij,ij->ki", buf, np.broadcast_to(t, z.shape)).T
         out[:, 8:11] = np.einsum("kij,ij->ki", buf, g).T
         out[:, 11:13] = np.einsum("kij,ij->ki", buf[1:], gz2).T
         out[:, 13:16] = np.einsum("kij,ij->ki", buf, yt).T
-        return out
 
     def derived(self, sm: np.ndarray, rows: np.ndarray | None = None) -> dict:
         """Linear parameters, cost, reduced Gauss-Newton matrix and gradient from row sums."""
@@ -1597,6 +1712,16 @@ class _VarProGaussian:
             "amp": amp, "a": a, "cost": self._rows(self.syy, rows) - amp * y0, "c": c, "p00": p00, "p01": p01, "p02": p02,
             "h11": h11, "h12": h12, "h22": h22, "g1": a * (amp * p01 - y1), "g2": a * (amp * p02 - y2),
         }
+
+    def cost(self, sm: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
+        """Only the cost ``|yt|^2 - A sum(g yt)`` of :meth:`derived` (for trial points)."""
+        s0, u0, q0, y0 = sm[:, 2], sm[:, 5], sm[:, 8], sm[:, 13]
+        if self.n_base == 2:
+            i00, i01, i11 = (self._rows(v, rows) for v in (self.i00, self.i01, self.i11))
+            p00 = q0 - (s0 * (i00 * s0 + i01 * u0) + u0 * (i01 * s0 + i11 * u0))
+        else:
+            p00 = q0 - s0 * s0 / self.m
+        return self._rows(self.syy, rows) - y0 * y0 / p00
 
     def params(self, sm: np.ndarray, dv: dict, step: np.ndarray | None = None) -> np.ndarray:
         """Scaled parameters ``(A, mu, s, b0[, b1])`` at the sums' point, plus a ``(mu, s)`` step.
@@ -1654,7 +1779,7 @@ class _VarProGaussian:
         return _rowdot(r, r)
 
 
-def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, mu0: np.ndarray, s0: np.ndarray, *, xtol: float = BATCH_XTOL, max_iter: int = 100):
+def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, *, xtol: float = BATCH_XTOL, max_iter: int = 100):
     """Solve the Gaussian-plus-baseline fits of all rows by variable projection.
 
     A damped Gauss-Newton (Levenberg-Marquardt, damping ``lambda diag(H)``)
@@ -1677,8 +1802,9 @@ def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, mu0: np.ndarr
     vp = _VarProGaussian(t, y, n_base)
     n = len(y)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        mu0, s0 = vp.start()
         sm = vp.sums(mu0, s0)
-        cost = vp.derived(sm)["cost"]
+        cost = vp.cost(sm)
     n_eval = n
     # rounding bound of cost = |yt|^2 - A sum(g yt): a rise below it is not a rise
     tol = 64.0 * np.finfo(float).eps * vp.syy
@@ -1714,7 +1840,7 @@ def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, mu0: np.ndarr
         idx = idx[go]
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             sm_new = vp.sums(sa[go, 0] + dm[go], sa[go, 1] + ds[go], idx)
-            cost_new = vp.derived(sm_new, idx)["cost"]
+            cost_new = vp.cost(sm_new, idx)
         n_eval += idx.size
         better = np.isfinite(cost_new) & (cost_new <= cost[idx] + tol[idx])
         acc = idx[better]
@@ -1736,8 +1862,8 @@ def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, mu0: np.ndarr
     return p, cost, jtj, converged, n_eval
 
 
-def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int, shared: bool = False) -> BatchGaussianFit:
-    """:func:`fit_gaussians_batch` on one chunk of validated rows (``shared``: all rows have the same positions)."""
+def _fit_gaussians_rows(x: np.ndarray, y: np.ndarray, n_base: int, shared: bool = False) -> BatchGaussianFit:
+    """:func:`fit_gaussians_batch` on validated rows (``shared``: all rows have the same positions)."""
     n, m = y.shape
     k = 3 + n_base
     dof = m - k
@@ -1746,12 +1872,14 @@ def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int, shared: bool
         msg = f"{m} points, the model needs at least {k + 2}"
         rows, params, cov, reasons = _physical_rows(x, x[:, 0], np.ones(n), np.ones(n), nan, np.full((n, k, k), np.nan), np.full(n, np.nan), np.full(n, np.nan), dof, np.zeros(n, bool), [msg] * n, n_base)
         return BatchGaussianFit(params, cov, rows["x_ref"], rows["chi2_red"], rows["residual_rms"], rows["ok"], tuple(reasons), rows)
-    x_ref, h, s = _scales(x, y)
-    # scaled positions: one shared row when all profiles share the positions
+    # positions scaled to [-1, 1] as in fit_gaussian (one shared row when all profiles
+    # share them); the signal is not scaled: the fit is linear in it and every
+    # tolerance of the iteration is relative
+    x_ref = 0.5 * (x[:, 0] + x[:, -1])
+    h = 0.5 * (x[:, -1] - x[:, 0])
+    s = np.ones(n)
     t = (x[:1] - x_ref[:1, None]) / h[:1, None] if shared else (x - x_ref[:, None]) / h[:, None]
-    yn = y / s[:, None]
-    mu0, s0 = _batch_start(t, yn, n_base)
-    p, cost, jtj, conv, _ = _gauss_varpro_batch(t, yn, n_base, mu0, s0)
+    p, cost, jtj, conv, _ = _gauss_varpro_batch(t, y, n_base)
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         try:
             cov_int = np.linalg.inv(jtj) * (cost / dof)[:, None, None]
@@ -1766,7 +1894,8 @@ def _fit_gaussians_chunk(x: np.ndarray, y: np.ndarray, n_base: int, shared: bool
         resid_rms = np.sqrt(chi2 / dof)
     fit_ok = conv & np.all(np.isfinite(p), axis=1)
     msgs = ["" if o else "did not converge" for o in fit_ok]
-    rows, params, cov, reasons = _physical_rows(x, x_ref, h, s, p, cov_int, chi2, resid_rms, dof, fit_ok, msgs, n_base)
+    dmin = np.broadcast_to(np.diff(x[:1] if shared else x, axis=1).min(axis=1), (n,))
+    rows, params, cov, reasons = _physical_rows(x, x_ref, h, s, p, cov_int, chi2, resid_rms, dof, fit_ok, msgs, n_base, dmin=dmin)
     return BatchGaussianFit(params, cov, rows["x_ref"], rows["chi2_red"], rows["residual_rms"], rows["ok"], tuple(reasons), rows)
 
 
@@ -1803,14 +1932,15 @@ def fit_profiles_batch(
     x, y = _check_batch(position_m, signals)
     if len(y) == 0:
         return []
-    shared = np.ndim(position_m) == 1
+    fit = _fit_gaussians_rows(x, y, n_base, np.ndim(position_m) == 1)
+    too_few = y.shape[1] < 3 + n_base + 2
     out: list[ProfileResult] = []
     for i in range(0, len(y), BATCH_CHUNK):
-        xc, yc = np.ascontiguousarray(x[i : i + BATCH_CHUNK]), y[i : i + BATCH_CHUNK]
-        fit = _fit_gaussians_chunk(xc, yc, n_base, shared)
-        too_few = np.full(len(yc), yc.shape[1] < 3 + n_base + 2)
-        g = fit.rows
-        out.extend(_assemble_rows(xc, yc, g, _gauss_shape_rows(g, xc, list(fit.message)), "gaussian", baseline, window_n_sigma, snr_min, too_few))
+        sl = slice(i, i + BATCH_CHUNK)
+        xc, yc = np.ascontiguousarray(x[sl]), y[sl]
+        g = {key: v[sl] for key, v in fit.rows.items()}
+        shape = _gauss_shape_rows(g, xc, list(fit.message[sl]))
+        out.extend(_assemble_rows(xc, yc, g, shape, "gaussian", baseline, window_n_sigma, snr_min, np.full(len(yc), too_few)))
     return out
 
 
