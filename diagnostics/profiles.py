@@ -834,6 +834,8 @@ def window_moments(
     """
     y = np.atleast_2d(np.asarray(signal, dtype=float))
     x = np.broadcast_to(np.atleast_2d(np.asarray(position_m, dtype=float)), y.shape)
+    # one row of positions shared by all profiles (a broadcast view)
+    shared = len(y) > 1 and x.strides[0] == 0
     w = _spacing(x)
     if centroid0_m is None or sigma0_m is None:
         wy = w * y
@@ -865,9 +867,14 @@ def window_moments(
         for _ in range(max_iter):
             if not todo.any():
                 break
-            half = n_sigma * sig[:, None]
-            new_lo = np.where(todo, np.count_nonzero(xc < mu[:, None] - half, axis=1), lo)
-            new_hi = np.where(todo, np.count_nonzero(xc <= mu[:, None] + half, axis=1), hi)
+            half = n_sigma * sig
+            if shared:
+                # counts of sorted positions below the bounds: binary searches, same integers
+                new_lo = np.where(todo, np.searchsorted(xc[0], mu - half, side="left"), lo)
+                new_hi = np.where(todo, np.searchsorted(xc[0], mu + half, side="right"), hi)
+            else:
+                new_lo = np.where(todo, np.count_nonzero(xc < (mu - half)[:, None], axis=1), lo)
+                new_hi = np.where(todo, np.count_nonzero(xc <= (mu + half)[:, None], axis=1), hi)
             same = (new_lo == lo) & (new_hi == hi)
             # a window returning to any earlier range is cycling: it has settled as
             # far as it will (take the latest)
@@ -1937,7 +1944,7 @@ def fit_profiles_batch(
     out: list[ProfileResult] = []
     for i in range(0, len(y), BATCH_CHUNK):
         sl = slice(i, i + BATCH_CHUNK)
-        xc, yc = np.ascontiguousarray(x[sl]), y[sl]
+        xc, yc = x[sl], y[sl]  # a broadcast view when the positions are shared
         g = {key: v[sl] for key, v in fit.rows.items()}
         shape = _gauss_shape_rows(g, xc, list(fit.message[sl]))
         out.extend(_assemble_rows(xc, yc, g, shape, "gaussian", baseline, window_n_sigma, snr_min, np.full(len(yc), too_few)))
