@@ -1394,7 +1394,9 @@ def _check_batch(position_m, signals) -> tuple[np.ndarray, np.ndarray]:
         raise InputError(f"position_m: expected shape ({y.shape[1]},) or {y.shape}, got {x.shape}")
     # a NaN or inf anywhere makes the sum non-finite; a finite sum proves all finite
     # (only an overflowing sum of finite values needs the element-wise check)
-    if not all(np.isfinite(np.sum(a)) or np.all(np.isfinite(a)) for a in (x_rows, y)):
+    with np.errstate(over="ignore", invalid="ignore"):
+        sums = [np.sum(x_rows), np.sum(y)]
+    if not all(np.isfinite(v) or np.all(np.isfinite(a)) for v, a in zip(sums, (x_rows, y), strict=True)):
         raise InputError("position_m/signals: expected finite numbers, found NaN or inf")
     if y.shape[1] < 3:
         raise InputError(f"signals: expected at least 3 points per profile, got {y.shape[1]}")
@@ -1885,6 +1887,15 @@ def _fit_gaussians_rows(x: np.ndarray, y: np.ndarray, n_base: int, shared: bool 
     x_ref = 0.5 * (x[:, 0] + x[:, -1])
     h = 0.5 * (x[:, -1] - x[:, 0])
     s = np.ones(n)
+    # rows of extreme magnitude (whose squares would overflow or underflow) are
+    # divided by a power of two, exactly, taken from a strided sample
+    with np.errstate(divide="ignore"):
+        e = np.floor(np.log2(np.max(np.abs(y[:, :: max(1, m // 32)]), axis=1)))
+    extreme = np.isfinite(e) & (np.abs(e) > 200)
+    if extreme.any():
+        s[extreme] = np.exp2(e[extreme])
+        y = y.copy()
+        y[extreme] /= s[extreme, None]
     t = (x[:1] - x_ref[:1, None]) / h[:1, None] if shared else (x - x_ref[:, None]) / h[:, None]
     p, cost, jtj, conv, _ = _gauss_varpro_batch(t, y, n_base)
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
