@@ -140,6 +140,7 @@ def read_scan(folder: str | Path) -> ScanSpec:
     if not isinstance(name, str) or not name.strip():
         raise ctx.error("name", "expected the scan's name as text" if "name" in doc else "missing (expected text)")
     timestamp = _util.parse_time(ctx.require(doc, "timestamp"), manifest, "field 'timestamp'")
+    ctx = dataclasses.replace(ctx, timestamp=timestamp)
     particle = _particle(ctx, ctx.require(doc, "particle"))
     energy = _util.finite_number(ctx.require(doc, "kinetic_energy_MeV"), manifest,
                                  "field 'kinetic_energy_MeV'", minimum=0.0)
@@ -187,6 +188,7 @@ class _Context:
 
     folder: Path
     manifest: Path
+    timestamp: Any = None  # the scan's time: profiles without their own take it
 
     def error(self, field: str, message: str):
         return located(self.manifest, f"field {field!r}: {message}")
@@ -371,7 +373,7 @@ def _profile(ctx: _Context, value: Any, field: str, plane: str, monitor: str) ->
     path = _util.inside(ctx.folder, value, ctx.manifest, field)
     if not path.is_file():
         raise ctx.error(field, f"profile {value!r} not found in the scan folder")
-    profile, device_given = read_profile_with_origin(path)
+    profile, device_given = read_profile_with_origin(path, plane=plane, timestamp=ctx.timestamp)
     if profile.plane != plane:
         raise ctx.error(field, f"{value!r} measures plane {profile.plane} (expected plane {plane})")
     if not device_given:

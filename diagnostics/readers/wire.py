@@ -16,13 +16,18 @@ Format
 Header lines (``# key: value``, before the column names; keys are
 case-insensitive):
 
-``plane`` (required)
-    ``x``, ``y`` or ``u`` (a tilted wire).
+``plane``
+    ``x``, ``y`` or ``u`` (a tilted wire).  When absent: the plane the caller
+    expects (a scan step's ``"x"``/``"y"`` key), else a lone ``x``/``y``/``u``
+    token of the file name (``WS-01_x_0800.csv`` -> ``x``), else ``x``; the
+    metadata then say so (``plane_source``).
 ``wire_angle_deg``
     Angle of the wire normal from +x toward +y, degrees.  Required for ``u``;
     for ``x``/``y`` it may be omitted and must be 0/90 if given.
-``timestamp`` (required)
-    ISO 8601 with ``Z`` or an offset, or epoch seconds.
+``timestamp``
+    ISO 8601 with ``Z`` or an offset, or epoch seconds.  When absent: the time the
+    caller gives (a scan's own timestamp), else the file's modification time; the
+    metadata then say so (``timestamp_source``).
 ``device``
     Scanner name.  When absent, the file name gives it: the stem up to the first
     ``_`` (``WS-02_0815.csv`` -> ``WS-02``), or the whole stem.  Inside a scan
@@ -30,7 +35,10 @@ case-insensitive):
 ``position_unit``
     ``m``, ``mm`` (default), ``um`` or ``µm``.
 
-Any other ``# key: value`` line is kept in :attr:`Profile.metadata`; ``#`` lines
+All header lines are optional, so a bare ``position,signal`` table is a
+profile too; a key that looks like a misspelt known key (``# plan: x``) is
+refused rather than kept.  Any other ``# key: value`` line is kept in
+:attr:`Profile.metadata`; ``#`` lines
 without a colon are comments.  The table needs the columns ``position`` and
 ``signal`` (finite numbers); other columns are ignored.  Positions must be
 strictly monotonic: a scan recorded with decreasing positions is reversed so
@@ -43,10 +51,13 @@ columns.
 
 from __future__ import annotations
 
+import difflib
 import math
+import re
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 
 from diagnostics.errors import located
@@ -63,13 +74,19 @@ _WHAT = "a wire-scanner profile with '# plane:' and '# timestamp:' lines and col
 _PLANE_ANGLE_DEG = {"x": 0.0, "y": 90.0}
 
 
-def read_profile(path: str | Path) -> Profile:
+def read_profile(path: str | Path, *, plane: str | None = None,
+                 timestamp: pd.Timestamp | None = None) -> Profile:
     """Read one wire-scanner profile (CSV or Parquet) into a :class:`Profile` in SI.
 
     Parameters
     ----------
     path : str or Path
         The profile file, in the format of the module docstring.
+    plane : {"x", "y", "u"}, optional, keyword-only
+        The plane to assume when the file has no ``# plane:`` line.
+    timestamp : pandas.Timestamp, optional, keyword-only
+        The time to assume when the file has no ``# timestamp:`` line (default:
+        the file's modification time).
 
     Returns
     -------
@@ -82,11 +99,12 @@ def read_profile(path: str | Path) -> Profile:
     diagnostics.errors.InputError
         One line naming the file, the line or header key, and what was expected.
     """
-    profile, _ = read_profile_with_origin(path)
+    profile, _ = read_profile_with_origin(path, plane=plane, timestamp=timestamp)
     return profile
 
 
-def read_profile_with_origin(path: str | Path) -> tuple[Profile, bool]:
+def read_profile_with_origin(path: str | Path, *, plane: str | None = None,
+                             timestamp: pd.Timestamp | None = None) -> tuple[Profile, bool]:
     """:func:`read_profile`, and whether the device name was given in the file."""
     p = _util.require_file(path, _WHAT)
     fmt = _util.file_format(p, "a wire-scanner profile")
@@ -99,7 +117,8 @@ def read_profile_with_origin(path: str | Path) -> tuple[Profile, bool]:
         table, row_name = _util.read_parquet_table(p, {"position": "float", "signal": "float"})
         _require_columns(p, table.column_names)
         header = _parquet_header(p, table)
-    return _build(p, header, table, row_name, "header" if fmt == "csv" else "metadata key")
+    return _build(p, header, table, row_name, "header" if fmt == "csv" else "metadata key",
+                  plane_hint=plane, time_hint=timestamp)
 
 
 def _csv_header(path: Path, head: _util.CsvHead) -> dict[str, str]:
@@ -146,18 +165,25 @@ def _require_columns(path: Path, names: tuple[str, ...] | list[str]) -> None:
 
 
 def _build(path: Path, header: dict[str, str], table: pa.Table, row_name: _util.RowName,
-           label: str) -> tuple[Profile, bool]:
+           label: str, *, plane_hint: str | None = None,
+           time_hint: pd.Timestamp | None = None) -> tuple[Profile, bool]:
+    _refuse_near_misses(path, header, label)
+    assumed: dict[str, str] = {}
     plane = header.get("plane")
     if plane is None:
-        raise located(path, f"{label} 'plane' missing{_util.did_you_mean('plane', header)} (expected '# plane: x', y or u)")
+        plane, assumed["plane_source"] = _assumed_plane(path, plane_hint)
     plane = plane.strip().lower()
     if plane not in PLANES:
-        raise located(path, f"{label} 'plane': {header['plane']!r} is not one of {', '.join(PLANES)}")
+        raise located(path, f"{label} 'plane': {header.get('plane', plane)!r} is not one of {', '.join(PLANES)}")
     angle_rad = _wire_angle(path, header, plane, label)
-    if "timestamp" not in header:
-        raise located(path, f"{label} 'timestamp' missing{_util.did_you_mean('timestamp', header)} "
-                            "(expected an ISO 8601 time with zone, e.g. 2026-11-30T08:15:00Z)")
-    timestamp = _util.parse_time(header["timestamp"], path, f"{label} 'timestamp'")
+    if "timestamp" in header:
+        timestamp = _util.parse_time(header["timestamp"], path, f"{label} 'timestamp'")
+    elif time_hint is not None:
+        timestamp, assumed["timestamp_source"] = pd.Timestamp(time_hint), "given by the caller"
+    else:
+        mtime_ns = path.stat().st_mtime_ns
+        timestamp = pd.Timestamp(mtime_ns, unit="ns", tz="UTC")
+        assumed["timestamp_source"] = "file modification time"
     unit = header.get("position_unit", "mm").strip()
     if unit not in POSITION_UNITS:
         raise located(path, f"{label} 'position_unit': unknown unit {unit!r} (expected m, mm or um)")
@@ -175,10 +201,31 @@ def _build(path: Path, header: dict[str, str], table: pa.Table, row_name: _util.
     signal = np.array(_util.column_numpy(table.column("signal")), dtype=np.float64)
     position, signal = _monotonic(path, position, signal, row_name)
 
-    metadata = {k: v for k, v in header.items() if k not in HEADER_KEYS}
+    metadata = {k: v for k, v in header.items() if k not in HEADER_KEYS} | assumed
     profile = Profile(device=device, plane=plane, wire_angle_rad=angle_rad, timestamp=timestamp,  # type: ignore[arg-type]
                       position_m=position, signal=signal, source=str(path), metadata=metadata)
     return profile, given
+
+
+def _refuse_near_misses(path: Path, header: dict[str, str], label: str) -> None:
+    """A key that is not a known one but close to one (``plan``) is a typo, not metadata."""
+    for key in header:
+        if key in HEADER_KEYS:
+            continue
+        hint = _util.did_you_mean(key, [k for k in HEADER_KEYS if k not in header])
+        if hint and difflib.SequenceMatcher(None, key, hint.split("'")[1]).ratio() >= 0.8:
+            raise located(path, f"{label} {key!r} is not a known key{hint}")
+
+
+def _assumed_plane(path: Path, hint: str | None) -> tuple[str, str]:
+    """The plane of a profile whose file does not name it, and where it came from."""
+    if hint is not None:
+        return hint, "given by the caller"
+    tokens = [t.lower() for t in re.split(r"[_\-. ]+", path.stem)]
+    named = [t for t in tokens if t in PLANES]
+    if len(named) == 1:
+        return named[0], "file name"
+    return "x", "assumed (no plane in the file or its name)"
 
 
 def _wire_angle(path: Path, header: dict[str, str], plane: str, label: str) -> float:

@@ -143,9 +143,10 @@ def test_broken_profile_files_name_file_line_and_expectation(broken, name, patte
 @pytest.mark.parametrize(
     ("text", "pattern"),
     [
-        ("# timestamp: 2026-11-30T08:15:00Z\nposition,signal\n1,2\n", r"header 'plane' missing"),
         ("# plan: x\n# timestamp: 2026-11-30T08:15:00Z\nposition,signal\n1,2\n",
-         r"header 'plane' missing \(did you mean 'plan'\?\)"),
+         r"header 'plan' is not a known key \(did you mean 'plane'\?\)"),
+        ("# timestamp: 2026-11-30T08:15:00Z\n# positon_unit: um\nposition,signal\n1,2\n",
+         r"header 'positon_unit' is not a known key \(did you mean 'position_unit'\?\)"),
         ("# plane: z\n# timestamp: 2026-11-30T08:15:00Z\nposition,signal\n1,2\n", r"'z' is not one of x, y, u"),
         ("# plane: u\n# timestamp: 2026-11-30T08:15:00Z\nposition,signal\n1,2\n",
          r"'wire_angle_deg' missing \(required for plane u"),
@@ -153,7 +154,6 @@ def test_broken_profile_files_name_file_line_and_expectation(broken, name, patte
          r"30 contradicts plane x"),
         ("# plane: u\n# wire_angle_deg: steep\n# timestamp: 2026-11-30T08:15:00Z\nposition,signal\n1,2\n",
          r"'steep' is not a number"),
-        ("# plane: x\nposition,signal\n1,2\n", r"header 'timestamp' missing"),
         ("# plane: x\n# timestamp: yesterday\nposition,signal\n1,2\n", r"'yesterday' is not an ISO 8601 time"),
         ("# plane: x\n# timestamp: 20261130T081500Z\nposition,signal\n1,2\n",
          r"'20261130T081500Z' is not an ISO 8601 time"),  # the compact form, refused as in tables
