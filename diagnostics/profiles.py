@@ -840,7 +840,8 @@ def window_moments(
     x = np.broadcast_to(np.atleast_2d(np.asarray(position_m, dtype=float)), y.shape)
     # one row of positions shared by all profiles (a broadcast view)
     shared = len(y) > 1 and x.strides[0] == 0
-    w = _spacing(x)
+    # spacing and centred positions of a shared row are computed once (same values per row)
+    w = _spacing(x[:1] if shared else x)
     if centroid0_m is None or sigma0_m is None:
         wy = w * y
         tot = wy.sum(1)
@@ -852,13 +853,14 @@ def window_moments(
     # The window |x - mu| <= n sig is an index range [lo, hi) of the sorted
     # positions, so each iteration needs only two counts and prefix sums.
     xr = 0.5 * (x[:, :1] + x[:, -1:])
-    xc = x - xr  # centred, to keep the prefix-sum variance free of cancellation
+    xc = (x[:1] - xr[:1]) if shared else (x - xr)  # centred, to keep the prefix-sum variance free of cancellation
     wy = w * y
     # prefix sums of w y, w y x, w y x^2 with a leading zero: cum[:, i, j] = sum over points < j
     cum = np.zeros((3, len(y), y.shape[1] + 1))
     np.cumsum(wy, axis=1, out=cum[0, :, 1:])
-    np.cumsum(wy * xc, axis=1, out=cum[1, :, 1:])
-    np.cumsum(wy * xc * xc, axis=1, out=cum[2, :, 1:])
+    wyx = wy * xc
+    np.cumsum(wyx, axis=1, out=cum[1, :, 1:])
+    np.cumsum(wyx * xc, axis=1, out=cum[2, :, 1:])
     ar = np.arange(len(y))
     mu = mu - xr[:, 0]
     ok = np.isfinite(mu) & np.isfinite(sig) & (sig > 0)
@@ -901,10 +903,11 @@ def window_moments(
         idx = np.arange(y.shape[1])
         mask = ok[:, None] & (idx >= lo[:, None]) & (idx < hi[:, None])
         wm = np.where(mask, w, 0.0)
-        tot = (wm * y).sum(1)
-        mu = (wm * y * xc).sum(1) / tot
+        wmy = wm * y
+        tot = wmy.sum(1)
+        mu = (wmy * xc).sum(1) / tot
         d2 = (xc - mu[:, None]) ** 2
-        var = (wm * y * d2).sum(1) / tot
+        var = (wmy * d2).sum(1) / tot
         good = ok & (tot > 0) & (var > 0)
         sig = np.where(good, np.sqrt(np.where(good, var, 1.0)), np.nan)
         mu = np.where(good, mu + xr[:, 0], np.nan)
