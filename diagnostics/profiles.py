@@ -1862,8 +1862,9 @@ def _gauss_varpro_batch(t: np.ndarray, y: np.ndarray, n_base: int, *, xtol: floa
             break
         idx = idx[go]
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            sm_new = vp.sums(sa[go, 0] + dm[go], sa[go, 1] + ds[go], idx)
-            cost_new = vp.cost(sm_new, idx)
+            every = None if idx.size == n else idx  # all rows: no gathers
+            sm_new = vp.sums(sa[go, 0] + dm[go], sa[go, 1] + ds[go], every)
+            cost_new = vp.cost(sm_new, every)
         n_eval += idx.size
         better = np.isfinite(cost_new) & (cost_new <= cost[idx] + tol[idx])
         acc = idx[better]
