@@ -311,22 +311,46 @@ def times(values: Any) -> np.ndarray:
                                  unit="ms")
 
 
+def times_ms(values: Any) -> np.ndarray:
+    """Times as milliseconds since 1970-01-01 UTC (float64, NaN for a missing time).
+
+    A plotly date axis takes numbers as milliseconds since the epoch, and a
+    numeric numpy array goes to the browser as one binary (base64) block: about
+    11 bytes a point instead of 26 for ISO text.  The axis must then be told it
+    is a date axis (``fig.update_xaxes(type="date")``), which
+    :func:`add_envelope` and :func:`date_axes` do.
+    """
+    idx = pd.DatetimeIndex(pd.to_datetime(values, utc=True))
+    out = idx.as_unit("ms").asi8.astype(np.float64)
+    out[np.asarray(idx.isna())] = np.nan
+    return out
+
+
+def date_axes(fig: go.Figure) -> go.Figure:
+    """Every x axis of ``fig`` a date axis (needed for :func:`times_ms` values)."""
+    return fig.update_xaxes(type="date")
+
+
 def add_envelope(fig: go.Figure, t: Any, mean: Any, lo: Any, hi: Any, *, name: str,
                  colour: str | None = None, scale: float = 1.0, unit: str = "",
                  row: int | None = None, col: int | None = None, showlegend: bool = True) -> None:
     """One decimated series: the bucket mean as a line and its min/max as a band."""
-    t = times(t)
+    t = times_ms(t)
     kw = {} if row is None else {"row": row, "col": col}
     group = name
+    # float32 values: binary blocks half the size, still 7 digits for the hover text
     fig.add_trace(go.Scatter(x=np.concatenate([t, t[::-1]]),
-                             y=np.concatenate([np.asarray(hi, float), np.asarray(lo, float)[::-1]]) * scale,
+                             y=(np.concatenate([np.asarray(hi, float), np.asarray(lo, float)[::-1]])
+                                * scale).astype(np.float32),
                              fill="toself", line=dict(width=0), opacity=0.25, hoverinfo="skip",
                              fillcolor=colour, legendgroup=group, showlegend=False, name=f"{name} min/max"),
                   **kw)
-    fig.add_trace(go.Scatter(x=t, y=np.asarray(mean, float) * scale, mode="lines", name=name,
+    fig.add_trace(go.Scatter(x=t, y=(np.asarray(mean, float) * scale).astype(np.float32), mode="lines",
+                             name=name,
                              line=dict(width=1.5, color=colour), legendgroup=group, showlegend=showlegend,
                              hovertemplate=f"%{{y:.4g}} {unit}<extra>{name}</extra>"),
                   **kw)
+    date_axes(fig)
 
 
 def mark_events(fig: go.Figure, events: pd.DataFrame | None) -> None:

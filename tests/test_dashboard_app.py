@@ -475,3 +475,56 @@ def test_a_failing_orbit_analysis_costs_its_numbers_not_the_page(monkeypatch, de
     assert metric(at, "Worst orbit drift").value == "–"
     assert metric(at, "Emittance x (norm.)").value != "–"  # the rest of the headline is there
     _data.orbit_jobs().__init__()
+
+
+# --------------------------------------------------------------------------- speed: what goes to the browser
+
+
+def chart_specs(at: AppTest) -> dict[str, dict]:
+    """The plotly figures of the page as sent to the browser, by element key."""
+    import json
+
+    return {c.proto.id.rsplit("-", 1)[-1]: json.loads(c.proto.spec) for c in at.get("plotly_chart")}
+
+
+def test_shift_headline_is_sent_before_the_charts_on_a_first_visit(monkeypatch, demo_store):
+    at = app_for(monkeypatch, demo_store)
+    assert not at.exception
+    assert metric(at, "Emittance x (norm.)").value != "–"
+    assert "Drawing the trends" in captions(at)
+    assert not chart_specs(at)  # the first run carries the numbers only
+    at.run()  # the run the page's timer asks for
+    assert "Drawing the trends" not in captions(at)
+    assert {"Beam sizes", "Emittance", "Orbit drift per BPM", "Temperatures"} <= {s.value for s in at.subheader}
+    assert {"shift_sizes", "shift_orbit", "shift_temps"} <= set(chart_specs(at))
+
+
+def test_shift_drift_chart_is_decimated_and_sent_as_binary_numbers(monkeypatch, demo_store):
+    """Long series leave the server as bucket means (and min/max), as base64 binary blocks.
+
+    Plotly's JSON encoder writes a numeric numpy array as ``{"dtype", "bdata"}``
+    (plotly.io.to_json); the times go as milliseconds on a date axis.
+    """
+    import base64
+
+    from dashboard.views import shift
+
+    at = app_for(monkeypatch, demo_store)
+    at.run()
+    specs = chart_specs(at)
+    fig = specs["shift_orbit"]
+    assert fig["layout"]["xaxis"]["type"] == "date" and fig["layout"]["xaxis2"]["type"] == "date"
+    bpm_traces = [t for t in fig["data"] if str(t.get("name", "")).startswith("BPMs ")]
+    assert len(bpm_traces) == 2  # one trace per plane, all BPMs in it
+    for tr in fig["data"]:
+        for axis in ("x", "y"):
+            values = tr.get(axis)
+            if values is None or values == [None]:
+                continue
+            assert isinstance(values, dict) and "bdata" in values, (tr.get("name"), axis)
+    for tr in bpm_traces:
+        n = len(base64.b64decode(tr["y"]["bdata"])) // 4  # float32
+        n_bpms = len(set(tr["customdata"]))
+        assert n / n_bpms <= shift.DRIFT_POINTS + 1  # each BPM's buckets and its NaN separator
+    for key in ("shift_sizes", "shift_temps"):
+        assert specs[key]["layout"]["xaxis"]["type"] == "date"

@@ -21,10 +21,16 @@ LIVE_HEADLINE_S = 10
 LIVE_TRENDS_S = 60
 #: How often the page looks for an orbit analysis that is still running, seconds.
 POLL_S = 2
-#: Largest number of buckets in the drift plot (24 BPMs x 2 planes of lines).
-DRIFT_POINTS = 360
-#: Largest number of buckets per temperature channel.
-TEMPERATURE_POINTS = 500
+#: On a session's first visit the trends follow the headline after this pause, seconds:
+#: the browser paints the numbers before it spends its time drawing charts.
+CHARTS_AFTER_S = 0.3
+#: Session flag: this session has had its headline drawn, so trends come in the same run.
+CHARTS_KEY = "_shift_charts"
+#: Largest number of buckets in the drift plot (24 BPMs x 2 planes of lines): a half-width
+#: chart is about 700 px wide, so 240 buckets (2 min on a shift) keep a point per 3 px.
+DRIFT_POINTS = 240
+#: Largest number of buckets per temperature channel (same reasoning).
+TEMPERATURE_POINTS = 300
 
 #: Raw kinds shown under "last data", with operator names.
 SOURCES = {"bpm": "BPMs", "slow": "Slow channels", "profiles": "Wire scans", "frames": "Screens",
@@ -167,6 +173,20 @@ def events_of(root: str, stamp: str, window: _data.Window, report) -> pd.DataFra
     return pd.DataFrame(rows, columns=["time", "end", "kind", "label"])
 
 
+def trends_later(root: str) -> None:
+    """The trends' place on a session's first visit: empty now, the whole page again shortly.
+
+    Runs inside a fragment with ``run_every`` = :data:`CHARTS_AFTER_S`.  The
+    first (inline) run only marks the session; the timed run then reruns the
+    page, which draws the trends at once and stops the timer.
+    """
+    if not st.session_state.get(CHARTS_KEY):
+        st.session_state[CHARTS_KEY] = True
+        st.caption("Drawing the trends …")
+        return
+    st.rerun(scope="app")
+
+
 def trends(root: str) -> None:
     stamp = _data.stamp(root)
     window = _ui.current_window(root, stamp)
@@ -204,7 +224,7 @@ def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame
         for (device, plane), grp in prof.groupby(["device", "plane"], sort=True):
             n += len(grp)
             fig.add_trace(go.Scatter(
-                x=_ui.times(grp["timestamp"]), y=grp["sigma_m"] * _ui.UM_PER_M,
+                x=_ui.times_ms(grp["timestamp"]), y=grp["sigma_m"] * _ui.UM_PER_M,
                 error_y=dict(array=grp.get("sigma_err_m", pd.Series(np.nan, index=grp.index)) * _ui.UM_PER_M,
                              visible=True, thickness=1),
                 mode="markers+lines", name=f"{device} {plane}", marker=dict(size=6),
@@ -224,7 +244,7 @@ def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame
             for device, grp in frames.groupby("device", sort=True):
                 n += len(grp)
                 fig.add_trace(go.Scatter(
-                    x=_ui.times(grp["timestamp"]), y=grp[col] * _ui.UM_PER_M,
+                    x=_ui.times_ms(grp["timestamp"]), y=grp[col] * _ui.UM_PER_M,
                     mode="markers", marker=dict(size=4, symbol="diamond"), name=f"{device} {plane}",
                     hovertemplate="%{y:.1f} µm<extra>" + f"{device} {plane}</extra>"))
     st.subheader("Beam sizes")
@@ -232,6 +252,7 @@ def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame
         st.caption("No analysed wire scans or screen images in the window.")
         return
     _ui.mark_events(fig, events)
+    _ui.date_axes(fig)
     _ui.base_layout(fig, y_title="rms size σ (µm)", height=340)
     _ui.plot(fig, key="shift_sizes")
 
@@ -277,13 +298,14 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
     else:
         highlight = (worst.bpm, worst.plane)
     fig = make_subplots(rows=2, cols=1, shared_xaxes=True, vertical_spacing=0.06)
-    t = _ui.times(times)
+    t = _ui.times_ms(times)  # numbers on a date axis: sent as one binary block
     for r, (plane, values) in enumerate((("x", dx), ("y", dy)), start=1):
         # all BPMs of a plane as one trace, separated by gaps: one trace is far cheaper than 24
         cols = [j for j, bpm in enumerate(bpms) if highlight != (bpm, plane)]
         # (a NaN after each BPM's series breaks the line before the next one starts)
         xs = np.tile(np.concatenate([t, t[-1:]]), len(cols))
         ys = np.concatenate([np.append(values[:, j] * _ui.UM_PER_M, np.nan) for j in cols]) if cols else xs[:0]
+        ys = ys.astype(np.float32)  # half the bytes; the hover shows 0.1 µm
         names = np.repeat([bpms[j] for j in cols], t.size + 1)
         fig.add_trace(go.Scatter(x=xs, y=ys, customdata=names, mode="lines",
                                  name=f"BPMs {plane}", showlegend=False, connectgaps=False,
@@ -302,6 +324,7 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
                          name=f"{bpm} {plane} (largest drift)", colour="#d62728", scale=_ui.UM_PER_M,
                          unit="µm", row=1 if plane == "x" else 2, col=1)
     _ui.mark_events(fig, events)
+    _ui.date_axes(fig)
     _ui.base_layout(fig, height=440)
     fig.update_yaxes(title="x drift (µm)", row=1, col=1)
     fig.update_yaxes(title="y drift (µm)", row=2, col=1)
@@ -353,7 +376,10 @@ def main() -> None:
     every = POLL_S if waiting else (LIVE_HEADLINE_S if live else None)
     st.fragment(headline, run_every=every)(root, waiting, live)
     st.divider()
-    st.fragment(trends, run_every=LIVE_TRENDS_S if live else None)(root)
+    if st.session_state.get(CHARTS_KEY):
+        st.fragment(trends, run_every=LIVE_TRENDS_S if live else None)(root)
+    else:  # headline first: the charts arrive in a second run
+        st.fragment(trends_later, run_every=CHARTS_AFTER_S)(root)
     if waiting:
         _data.orbit_report(root, stamp, window.key)
 
