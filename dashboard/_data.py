@@ -19,6 +19,7 @@ Every page gets its data here and nowhere else.  The rules:
 
 from __future__ import annotations
 
+import gc
 import importlib
 import json
 import os
@@ -53,6 +54,30 @@ BUCKETS: tuple[tuple[str, float], ...] = (
 TTL_S = 300
 #: A heartbeat older than this is taken as "the watch service is not running".
 HEARTBEAT_FRESH_S = 120.0
+
+
+_FROZEN = threading.Lock()
+_frozen_once: list[bool] = []
+
+
+def freeze_heap_once() -> None:
+    """Take the objects alive now out of the cyclic garbage collector's scans, once per process.
+
+    Streamlit runs ``gc.collect(2)`` after every script run (option
+    ``runner.postScriptGC``).  With numpy, pandas, scipy, plotly and streamlit
+    imported that walks some 150 000 long-lived objects, 0.1-0.2 s on a busy
+    core during which the server's own thread waits for the interpreter lock
+    and the browser for the end of the run.  ``gc.freeze()`` (Python docs,
+    module gc: "move all objects tracked by the garbage collector into a
+    permanent generation") leaves later collections only the newer objects.
+    Called after the first page run, when the libraries are imported.
+    """
+    with _FROZEN:
+        if _frozen_once:
+            return
+        _frozen_once.append(True)
+    gc.collect()  # what is garbage now is freed, not frozen
+    gc.freeze()
 
 
 class Unavailable(RuntimeError):
@@ -327,6 +352,18 @@ def _orbit_job(root: str, start: str, end: str):
     return orbit.analyze_orbit(bpm, slow_df=slow if len(slow) else None)
 
 
+#: A new orbit analysis waits this long on its worker before it starts, seconds.  The
+#: page run that asked for it is then done sending its elements: on 2 cores a worker
+#: busy in Python holds the interpreter lock and slows the server's own thread.
+START_PAUSE_S = 0.4
+
+
+def _after_pause(job, *args):
+    """``job(*args)`` after :data:`START_PAUSE_S` (runs on the orbit worker)."""
+    time.sleep(START_PAUSE_S)
+    return job(*args)
+
+
 @dataclass(frozen=True)
 class OrbitAnswer:
     """What :func:`orbit_report` can give now.
@@ -380,7 +417,7 @@ class OrbitJobs:
                 for other_key, other in self._jobs.items():
                     if other_key[0] == root and other_key != key:
                         other.cancel()  # only succeeds while it waits in the queue
-                job = self._pool.submit(_orbit_job, root, *window)
+                job = self._pool.submit(_after_pause, _orbit_job, root, *window)
                 job.started = time.monotonic()  # type: ignore[attr-defined]
                 self._jobs[key] = job
             self._jobs.move_to_end(key)

@@ -18,7 +18,7 @@ HERE = Path(__file__).resolve().parent
 if str(HERE.parent) not in sys.path:  # started by hand from a source tree
     sys.path.insert(0, str(HERE.parent))
 
-from dashboard import _ui  # noqa: E402
+from dashboard import _data, _ui  # noqa: E402
 
 st.set_page_config(page_title="beamdiag", layout="wide", initial_sidebar_state="expanded")
 
@@ -37,3 +37,4 @@ page = st.navigation(PAGES, position="sidebar", expanded=True)
 _ui.sidebar()
 page.run()
 _ui.footer()
+_data.freeze_heap_once()

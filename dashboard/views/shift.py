@@ -376,11 +376,12 @@ def main() -> None:
     every = POLL_S if waiting else (LIVE_HEADLINE_S if live else None)
     st.fragment(headline, run_every=every)(root, waiting, live)
     st.divider()
-    if st.session_state.get(CHARTS_KEY):
+    charts = bool(st.session_state.get(CHARTS_KEY))
+    if charts:
         st.fragment(trends, run_every=LIVE_TRENDS_S if live else None)(root)
     else:  # headline first: the charts arrive in a second run
         st.fragment(trends_later, run_every=CHARTS_AFTER_S)(root)
-    if waiting:
+    if waiting and charts:  # after the run that draws the charts, so the two do not compete
         _data.orbit_report(root, stamp, window.key)
 
 
