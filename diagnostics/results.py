@@ -10,6 +10,7 @@ Python numbers and lists), which is what the CLI prints and the store writes.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 from collections.abc import Iterable, Mapping
 from typing import Any
@@ -46,10 +47,24 @@ def merge_flags(*groups: Iterable[str]) -> tuple[str, ...]:
     return tuple(seen)
 
 
+_PLAIN = (str, int, bool, type(None))
+
+
+@functools.cache
+def _field_names(cls: type) -> tuple[str, ...]:
+    return tuple(f.name for f in dataclasses.fields(cls))
+
+
 def jsonable(value: Any) -> Any:
     """Convert numpy / pandas / dataclass values into JSON-safe Python values."""
+    # the common leaves first: this runs once per field of every stored result
+    kind = type(value)
+    if kind is float:
+        return value if math.isfinite(value) else None
+    if kind in _PLAIN:
+        return value
     if dataclasses.is_dataclass(value) and not isinstance(value, type):
-        return {f.name: jsonable(getattr(value, f.name)) for f in dataclasses.fields(value)}
+        return {name: jsonable(getattr(value, name)) for name in _field_names(kind)}
     if isinstance(value, Mapping):
         return {str(k): jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
