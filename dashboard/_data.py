@@ -472,6 +472,47 @@ def orbit_report(root: str, stamp_: str, window: tuple[str, str], *, wait_s: flo
         return OrbitAnswer(False, stand_in[1], updating=True, window=stand_in[0])
 
 
+# --------------------------------------------------------------------------- warming caches ahead
+
+_WARM_POOL = ThreadPoolExecutor(max_workers=1, thread_name_prefix="beamdiag-warm")
+_WARM_LOCK = threading.Lock()
+_warmed: OrderedDict[tuple, None] = OrderedDict()
+
+
+def prewarm(key: tuple, tasks: list[tuple[Any, tuple]]) -> bool:
+    """Run ``func(*args)`` for each task on a background thread, once per ``key``.
+
+    Pages hand over the cached loaders of windows the operator is likely to
+    pick next (the other presets), so that picking one finds its queries in
+    the caches.  The thread carries the calling script's run context, which
+    ``st.cache_data`` needs; it waits :data:`START_PAUSE_S` first so the page
+    run that asked is done.  A failing task is skipped: the page computes it
+    again when it is asked for.  Returns False when ``key`` was warmed already.
+    """
+    from streamlit.runtime.scriptrunner import add_script_run_ctx, get_script_run_ctx
+
+    with _WARM_LOCK:
+        if key in _warmed:
+            return False
+        _warmed[key] = None
+        while len(_warmed) > 16:
+            _warmed.popitem(last=False)
+    ctx = get_script_run_ctx(suppress_warning=True)
+
+    def run() -> None:
+        if ctx is not None:
+            add_script_run_ctx(threading.current_thread(), ctx)
+        time.sleep(START_PAUSE_S)
+        for func, args in tasks:
+            try:
+                func(*args)
+            except Exception:  # noqa: BLE001, S112 - only a head start; the page asks again
+                continue
+
+    _WARM_POOL.submit(run)
+    return True
+
+
 @st.cache_data(ttl=TTL_S, max_entries=16, show_spinner="Loading the scan ...")
 def load_scan(root: str, stamp_: str, scan_id: str):
     """``Store.load_scan(scan_id)``."""

@@ -528,3 +528,29 @@ def test_shift_drift_chart_is_decimated_and_sent_as_binary_numbers(monkeypatch, 
         assert n / n_bpms <= shift.DRIFT_POINTS + 1  # each BPM's buckets and its NaN separator
     for key in ("shift_sizes", "shift_temps"):
         assert specs[key]["layout"]["xaxis"]["type"] == "date"
+
+
+def test_shift_warms_the_other_preset_windows_so_a_change_reads_no_trends(monkeypatch, demo_store):
+    import streamlit as st
+
+    from dashboard import _data, _ui
+    from diagnostics.store import Store
+
+    # the 24-minute test store makes every preset the whole store: add a shorter one
+    monkeypatch.setitem(_ui.WINDOW_PRESETS, "Last 10 min", pd.Timedelta(minutes=10))
+    st.cache_data.clear()
+    _data._warmed.clear()
+    at = app_for(monkeypatch, demo_store)
+    at.run()  # the run that draws the charts hands the other presets to the warming thread
+    _data._WARM_POOL.submit(lambda: None).result(timeout=60)  # the pool is FIFO: warming is done
+
+    def no_store_reads(self, *args, **kwargs):
+        raise AssertionError("the store was asked for a trend of a warmed window")
+
+    monkeypatch.setattr(Store, "trend", no_store_reads)  # (the orbit worker reads raw readings, no trends)
+    at.selectbox(key="window_preset").select("Last 10 min").run()
+    assert not at.exception
+    assert not at.error, [e.value for e in at.error]
+    start, end = shown_window(at)
+    assert end - start <= pd.Timedelta(minutes=10, seconds=1)
+    assert {"shift_orbit", "shift_temps"} <= set(chart_specs(at))

@@ -334,19 +334,28 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
                "drift in red with the min/max of its readings.")
 
 
+def temperature_channels(slow: pd.DataFrame) -> tuple[pd.Series, tuple[str, ...]]:
+    """The unit of each slow channel, and the channels whose unit is a temperature."""
+    units = slow.groupby("channel", sort=True)["unit"].first()
+    return units, tuple(ch for ch, u in units.items() if str(u).lower() in ("degc", "°c", "c", "k", "degk"))
+
+
+def temperature_trend(root: str, stamp: str, window: _data.Window, temps: tuple[str, ...]) -> pd.DataFrame:
+    return _data.trend(root, stamp, "slow", ("value",), window.key,
+                       _data.bucket_for(window.duration_s, max_points=TEMPERATURE_POINTS), temps)
+
+
 def temperatures(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
     st.subheader("Temperatures")
     slow = _data.read_slow(root, stamp, window.key)
     if slow.empty:
         st.caption("No slow-channel readings in the window.")
         return
-    units = slow.groupby("channel", sort=True)["unit"].first()
-    temps = tuple(ch for ch, u in units.items() if str(u).lower() in ("degc", "°c", "c", "k", "degk"))
+    units, temps = temperature_channels(slow)
     if not temps:
         st.caption("No temperature channels in the window.")
         return
-    tr = _data.trend(root, stamp, "slow", ("value",), window.key,
-                     _data.bucket_for(window.duration_s, max_points=TEMPERATURE_POINTS), temps)
+    tr = temperature_trend(root, stamp, window, temps)
     fig = go.Figure()
     for ch, grp in tr.groupby("device", sort=True):
         _ui.add_envelope(fig, grp["timestamp"], grp["value_mean"], grp["value_min"], grp["value_max"],
@@ -354,6 +363,28 @@ def temperatures(root: str, stamp: str, window: _data.Window, events: pd.DataFra
     _ui.mark_events(fig, events)
     _ui.base_layout(fig, y_title=f"temperature ({units[temps[0]]})", height=420)
     _ui.plot(fig, key="shift_temps")
+
+
+def warm_window(root: str, stamp: str, window: _data.Window) -> None:
+    """Fill the caches of every query the trends of ``window`` make (no drawing)."""
+    for kind in ("profiles", "frames", "scans"):
+        _data.results(root, stamp, kind, window.key)
+    _data.drift_trend(root, stamp, window.key, _data.bucket_for(window.duration_s, max_points=DRIFT_POINTS))
+    slow = _data.read_slow(root, stamp, window.key)
+    if not slow.empty:
+        _, temps = temperature_channels(slow)
+        if temps:
+            temperature_trend(root, stamp, window, temps)
+
+
+def warm_other_windows(root: str, stamp: str, window: _data.Window) -> None:
+    """Start filling the caches of the other preset windows, in the background."""
+    span = _data.data_range(root, stamp)
+    if span is None:
+        return
+    others = {w.key: w for preset in _ui.WINDOW_PRESETS if preset != "Custom"
+              for w in [_ui.default_window(span, preset)] if w.key != window.key}
+    _data.prewarm(("shift", root, stamp), [(warm_window, (root, stamp, w)) for w in others.values()])
 
 
 def main() -> None:
@@ -382,7 +413,12 @@ def main() -> None:
     else:  # headline first: the charts arrive in a second run
         st.fragment(trends_later, run_every=CHARTS_AFTER_S)(root)
     if waiting and charts:  # after the run that draws the charts, so the two do not compete
-        _data.orbit_report(root, stamp, window.key)
+        try:
+            _data.orbit_report(root, stamp, window.key)
+        except Exception:  # noqa: BLE001, S110 - it failed meanwhile: the headline's next poll says so
+            pass
+    if charts and not live:  # (while new data arrive, the store stamp and so the keys move on)
+        warm_other_windows(root, stamp, window)
 
 
 _ui.guard(main, what="This page")
