@@ -284,7 +284,8 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
               options: pipeline.AnalysisOptions | Mapping | None = None, scheduler: str | None = None,
               workers: int = 2, serial: bool = False, version: str | None = None,
               progress: bool | None = None, write: bool = True,
-              max_task_rows: int | None = None) -> tuple[ReanalysisSummary, list[dict[str, Any]]]:
+              max_task_rows: int | None = None,
+              client: Any = None) -> tuple[ReanalysisSummary, list[dict[str, Any]]]:
     """Reanalyse part of the archive and write the rows as a new result-set version.
 
     Parameters
@@ -296,6 +297,9 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
     options : AnalysisOptions or mapping, optional
     scheduler : str, optional
         Address of an existing Dask scheduler (``tcp://host:8786``).
+    client : distributed.Client, optional
+        An already connected client (a notebook's, say): used as it is, checked for
+        worker versions once, and left open.
     workers : int
         Worker processes of the local cluster when no scheduler is given.
     serial : bool
@@ -351,7 +355,12 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
     elif parts:
         from distributed import as_completed
 
-        client, cluster, label = _start_client(scheduler, workers)
+        own_client = client is None
+        if own_client:
+            client, cluster, label = _start_client(scheduler, workers)
+        else:
+            _check_worker_versions(client)
+            cluster, label = None, str(client.scheduler.address)
         try:
             futures = [client.submit(run_partition_json, root, kind, part.ids, options_json,
                                      part.start_ns, part.end_ns, pure=False) for part in parts]
@@ -363,7 +372,8 @@ def reanalyze(store: Any, *, kind: str, start: Any = None, end: Any = None,
                     bar.step()
                 flush()
         finally:
-            client.close()
+            if own_client:
+                client.close()
             if cluster is not None:
                 cluster.close()
     else:
