@@ -76,9 +76,17 @@ def start_server(store: Path) -> tuple[subprocess.Popen, str]:
     raise SystemExit("the dashboard did not start within 60 s")
 
 
+def count_messages(page) -> list[int]:
+    """Sizes of the websocket messages the page receives from now on (bytes; appended as they come)."""
+    sizes: list[int] = []
+    page.on("websocket", lambda ws: ws.on("framereceived", lambda f: sizes.append(len(f) if f else 0)))
+    return sizes
+
+
 def first_render(browser, base: str) -> dict[str, float]:
     ctx = browser.new_context(viewport={"width": 1600, "height": 1000})
     page = ctx.new_page()
+    sizes = count_messages(page)
     t0 = time.perf_counter()
     page.goto(base + "/")
     page.wait_for_selector('[data-testid="stMetric"]', timeout=180_000)
@@ -87,11 +95,17 @@ def first_render(browser, base: str) -> dict[str, float]:
     t_chart = time.perf_counter() - t0
     page.wait_for_function(HEADLINE_DONE, timeout=300_000)
     t_orbit = time.perf_counter() - t0
-    return {"page": page, "ctx": ctx, "metrics": t_metrics, "chart": t_chart, "orbit": t_orbit}
+    page.wait_for_function("() => document.querySelectorAll('[data-testid=\"stPlotlyChart\"]').length >= 4",
+                           timeout=180_000)
+    t_charts = time.perf_counter() - t0
+    return {"page": page, "ctx": ctx, "metrics": t_metrics, "chart": t_chart, "orbit": t_orbit,
+            "charts": t_charts, "bytes": sum(sizes), "largest": max(sizes, default=0), "sizes": sizes}
 
 
-def window_change(page) -> dict[str, float]:
+def window_change(page, sizes: list[int]) -> dict[str, float]:
     before = page.get_by_text("Showing:", exact=False).first.inner_text()
+    page.wait_for_timeout(1500)  # let the background warming of the other windows finish
+    sizes.clear()
     t0 = time.perf_counter()
     page.get_by_test_id("stSelectbox").first.click()
     page.get_by_role("option", name="Last 30 min").click()
@@ -99,7 +113,7 @@ def window_change(page) -> dict[str, float]:
     t_page = time.perf_counter() - t0
     page.wait_for_function(HEADLINE_DONE, timeout=300_000)
     t_orbit = time.perf_counter() - t0
-    return {"page": t_page, "orbit": t_orbit}
+    return {"page": t_page, "orbit": t_orbit, "bytes": sum(sizes), "largest": max(sizes, default=0)}
 
 
 def streamlit_floor(browser) -> float:
@@ -175,7 +189,7 @@ def main() -> int:
             cold = first_render(browser, base)
             cold["ctx"].close()
             warm = first_render(browser, base)
-            change = window_change(warm["page"])
+            change = window_change(warm["page"], warm["sizes"])
             warm["ctx"].close()
             browser.close()
     finally:
@@ -185,11 +199,13 @@ def main() -> int:
     print(f"plain reference (read all readings + analyze_orbit, synchronous): {ref_s:.2f} s")
     for name, r in (("cold server", cold), ("warm server, new session", warm)):
         print(f"Shift first render, {name}: headline numbers {r['metrics']:.2f} s, first chart "
-              f"{r['chart']:.2f} s, orbit numbers {r['orbit']:.2f} s; ratio reference/headline "
-              f"{ref_s / r['metrics']:.1f}x")
+              f"{r['chart']:.2f} s, orbit numbers {r['orbit']:.2f} s, all four charts {r['charts']:.2f} s; "
+              f"ratio reference/headline {ref_s / r['metrics']:.1f}x; websocket {r['bytes'] / 1e3:.0f} kB "
+              f"(largest message {r['largest'] / 1e3:.0f} kB)")
     print(f"floor: a one-number Streamlit page on a warm server shows in {floor:.2f} s here")
     print(f"window change to 'Last 30 min': page redrawn {change['page']:.2f} s, orbit numbers "
-          f"{change['orbit']:.2f} s")
+          f"{change['orbit']:.2f} s (clicks included); websocket {change['bytes'] / 1e3:.0f} kB "
+          f"(largest message {change['largest'] / 1e3:.0f} kB)")
     ok_first = warm["metrics"] < FIRST_RENDER_BUDGET_S
     ok_change = change["page"] < WINDOW_CHANGE_BUDGET_S
     print(f"budget first render < {FIRST_RENDER_BUDGET_S:g} s (warm server): {'met' if ok_first else 'NOT met'}; "

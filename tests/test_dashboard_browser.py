@@ -150,6 +150,11 @@ def test_every_page_renders_its_headline_in_chromium(server, browser):
             assert page.locator('[data-testid="stException"]').count() == 0, f"exception on {name}"
             assert page.get_by_text("not a machine-protection", exact=False).count() >= 1
             page.screenshot(path=str(SHOTS / f"{name}.png"), full_page=True)
+            if name == "shift":  # the trends below the fold: drift, temperatures
+                assert page.locator('[data-testid="stPlotlyChart"]').count() >= 4
+                page.locator('[data-testid="stPlotlyChart"]').last.scroll_into_view_if_needed()
+                page.wait_for_timeout(500)
+                page.screenshot(path=str(SHOTS / "shift_trends.png"))
         assert not errors, errors
     finally:
         context.close()
@@ -161,6 +166,10 @@ def test_window_change_updates_the_shift_page_quickly(server, browser):
     try:
         page.goto(server + "/", wait_until="domcontentloaded")
         wait_headline(page)
+        # a window change on a drawn page: the charts follow the headline in a second run
+        page.wait_for_function("() => document.querySelectorAll('[data-testid=\"stPlotlyChart\"]').length >= 4",
+                               timeout=60_000)
+        page.wait_for_timeout(1000)
         caption = page.get_by_text("Showing:", exact=False).first
         before = caption.inner_text()
         t0 = time.perf_counter()

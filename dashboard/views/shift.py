@@ -412,7 +412,7 @@ def main() -> None:
         st.fragment(trends, run_every=LIVE_TRENDS_S if live else None)(root)
     else:  # headline first: the charts arrive in a second run
         st.fragment(trends_later, run_every=CHARTS_AFTER_S)(root)
-    if waiting and charts:  # after the run that draws the charts, so the two do not compete
+    if waiting:  # at the end of the run; the worker pauses first so the run's elements go out
         try:
             _data.orbit_report(root, stamp, window.key)
         except Exception:  # noqa: BLE001, S110 - it failed meanwhile: the headline's next poll says so
