@@ -378,11 +378,14 @@ def warm_window(root: str, stamp: str, window: _data.Window) -> None:
 
 
 def warm_other_windows(root: str, stamp: str, window: _data.Window) -> None:
-    """Start filling the caches of the other preset windows, in the background."""
+    """Start filling the caches of the other preset windows of fixed length, in the background.
+
+    ("All data" is left out: on a store of many weeks it is the one costly to read ahead.)
+    """
     span = _data.data_range(root, stamp)
     if span is None:
         return
-    others = {w.key: w for preset in _ui.WINDOW_PRESETS if preset != "Custom"
+    others = {w.key: w for preset, length in _ui.WINDOW_PRESETS.items() if length is not None
               for w in [_ui.default_window(span, preset)] if w.key != window.key}
     _data.prewarm(("shift", root, stamp), [(warm_window, (root, stamp, w)) for w in others.values()])
 
