@@ -128,8 +128,8 @@ def test_command_line_carries_every_safe_option_and_binds_loopback(tmp_path):
     from streamlit import config
 
     cmd = dash_cmd.streamlit_command(tmp_path)
-    assert cmd[1:4] == ["-m", "streamlit", "run"] and cmd[4] == str(dash_cmd.APP_PATH)
-    pairs = dict(zip(cmd[5::2], cmd[6::2], strict=False))
+    assert cmd[1:3] == [str(dash_cmd.SERVE_PATH), "run"] and cmd[3] == str(dash_cmd.APP_PATH)
+    pairs = dict(zip(cmd[4::2], cmd[5::2], strict=False))
     assert pairs["--server.address"] == "127.0.0.1"
     expected = {
         "server.headless": "true", "browser.gatherUsageStats": "false", "client.showErrorDetails": "type",

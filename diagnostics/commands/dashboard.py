@@ -1,6 +1,8 @@
 """``beamdiag dashboard``: serve the Streamlit dashboard on a store.
 
-The dashboard is started as ``python -m streamlit run dashboard/app.py`` with
+The dashboard is started as ``python dashboard/serve.py run dashboard/app.py``
+(Streamlit's own ``run``, after the launcher has imported the libraries the pages
+need, so the first session does not wait for them) with
 the store in the environment variable ``BEAMDIAG_STORE`` and a fixed set of
 server options chosen for a shared control-room network: bound to the loopback
 interface unless told otherwise, no usage statistics, error types only (no
@@ -22,6 +24,8 @@ from diagnostics.errors import InputError
 #: The Streamlit entry script.
 APP_PATH = Path(__file__).resolve().parents[2] / "dashboard" / "app.py"
 
+#: The launcher that imports the pages' libraries, then hands over to Streamlit.
+SERVE_PATH = APP_PATH.parent / "serve.py"
 #: Environment variable through which the dashboard learns the store folder.
 STORE_ENV = "BEAMDIAG_STORE"
 
@@ -57,9 +61,9 @@ def streamlit_command(store: str | Path, *, host: str = DEFAULT_HOST, port: int 
     Returns
     -------
     list of str
-        ``[python, -m, streamlit, run, APP, --server.address, HOST, ...]``.
+        ``[python, SERVE, run, APP, --server.address, HOST, ...]``.
     """
-    cmd = [sys.executable, "-m", "streamlit", "run", str(APP_PATH),
+    cmd = [sys.executable, str(SERVE_PATH), "run", str(APP_PATH),
            "--server.address", str(host), "--server.port", str(int(port))]
     for name, value in SAFE_OPTIONS:
         cmd += [f"--{name}", value]
