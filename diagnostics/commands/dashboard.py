@@ -103,7 +103,11 @@ def run(args: argparse.Namespace) -> int:
     env = {**os.environ, STORE_ENV: str(store.resolve())}
     print(f"beamdiag dashboard: serving {store.resolve()} at {dashboard_url(args.host, args.port)}",
           flush=True)
-    proc = subprocess.Popen(cmd, env=env)
+    if os.name == "posix":
+        # become the server: SIGTERM, SIGKILL and Ctrl-C (systemd, a test, an
+        # operator) then reach Streamlit itself and never leave an orphan serving
+        os.execve(cmd[0], cmd, env)
+    proc = subprocess.Popen(cmd, env=env)  # pragma: no cover - not POSIX
     try:
         return proc.wait()
     except KeyboardInterrupt:
