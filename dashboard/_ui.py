@@ -143,6 +143,25 @@ def current_window(root: str, stamp: str, *, key: str = "window") -> _data.Windo
     return _data.Window(_data.utc(start), _data.utc(end))
 
 
+def page_window(title: str, empty_message: str = "The store holds no measurements yet."
+                ) -> tuple[str, str, _data.Window] | None:
+    """A page's title, store and time window: ``(root, stamp, window)``.
+
+    ``None`` when there is nothing to show; the page has then already shown why
+    (no store, or the empty state with ``empty_message``).
+    """
+    st.title(title)
+    ctx = page_store()
+    if ctx is None:
+        return None
+    root, stamp = ctx
+    window = window_picker(root, stamp)
+    if window is None:
+        empty_state(empty_message)
+        return None
+    return root, stamp, window
+
+
 def window_picker(root: str, stamp: str, *, key: str = "window") -> _data.Window | None:
     """Pick the time window; shared by every page through ``st.session_state``.
 

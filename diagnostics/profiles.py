@@ -316,7 +316,7 @@ def least_squares_fit(
 
     Minimises ``sum w (model(x, p) - y)^2`` with MINPACK's Levenberg-Marquardt
     (:func:`scipy.optimize.least_squares`, ``method="lm"``; J. J. More, "The
-    Levenberg-Marquardt algorithm: implementation and theory", Lecture Notes in
+    Levenberg-Marquardt algorithm: implementation and theory", Lect. Notes in
     Mathematics 630, 1978), or the trust-region reflective method when ``bounds``
     are given.
 

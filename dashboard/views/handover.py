@@ -37,15 +37,11 @@ def file_name(window: _data.Window) -> str:
 
 
 def main() -> None:
-    st.title("Handover")
-    ctx = _ui.page_store()
-    if ctx is None:
+    page = _ui.page_window(
+        "Handover", "The store holds no measurements yet, so there is no shift to report.")
+    if page is None:
         return
-    root, stamp = ctx
-    window = _ui.window_picker(root, stamp)
-    if window is None:
-        _ui.empty_state("The store holds no measurements yet, so there is no shift to report.")
-        return
+    root, stamp, window = page
     with st.form("handover_notes", border=False):
         notes = st.text_area("Notes for the next shift", key="handover_notes_text", max_chars=MAX_NOTES,
                              height=140, placeholder="What happened, what was changed, what to watch …")

@@ -168,15 +168,10 @@ def drift_vs_channel(root: str, stamp: str, window: _data.Window, report, bpm: s
 
 
 def main() -> None:
-    st.title("Orbit")
-    ctx = _ui.page_store()
-    if ctx is None:
+    page = _ui.page_window("Orbit")
+    if page is None:
         return
-    root, stamp = ctx
-    window = _ui.window_picker(root, stamp)
-    if window is None:
-        _ui.empty_state("The store holds no measurements yet.")
-        return
+    root, stamp, window = page
     report = _ui.orbit_report_or_wait(root, stamp, window)
     if report is None:
         if _data.orbit_report(root, stamp, window.key).ready:

@@ -229,15 +229,10 @@ def wire_scans(root: str, stamp: str, window: _data.Window) -> None:
 
 
 def main() -> None:
-    st.title("Profiles and screens")
-    ctx = _ui.page_store()
-    if ctx is None:
+    page = _ui.page_window("Profiles and screens")
+    if page is None:
         return
-    root, stamp = ctx
-    window = _ui.window_picker(root, stamp)
-    if window is None:
-        _ui.empty_state("The store holds no measurements yet.")
-        return
+    root, stamp, window = page
     tab_screens, tab_wires = st.tabs(["Screens", "Wire scans"])
     with tab_screens:
         screens(root, stamp, window)

@@ -391,15 +391,10 @@ def warm_other_windows(root: str, stamp: str, window: _data.Window) -> None:
 
 
 def main() -> None:
-    st.title("Shift")
-    ctx = _ui.page_store()
-    if ctx is None:
+    page = _ui.page_window("Shift")
+    if page is None:
         return
-    root, stamp = ctx
-    window = _ui.window_picker(root, stamp)
-    if window is None:
-        _ui.empty_state("The store holds no measurements yet.")
-        return
+    root, stamp, window = page
     beat = _data.heartbeat(root)
     live = _data.heartbeat_is_fresh(beat)
     # the orbit analysis of a new window starts after the first render, not during it
