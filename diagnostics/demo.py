@@ -96,7 +96,7 @@ BPM_RATE_HZ = 10.0
 
 #: Tunnel air temperature: baseline per sensor (degC), the swing's peak-to-peak
 #: size, and each sensor's delay along the tunnel (air flows downstream).
-TEMPERATURE = {
+TEMPERATURE: dict[str, Any] = {
     "baseline_degC": {"T-01": 22.10, "T-02": 22.35, "T-03": 21.90, "T-04": 22.55},
     "swing_degC": 0.4,
     "peak_time": "10:00",
@@ -109,20 +109,20 @@ THERMAL_LAG_S = 1500.0
 WORST_THERMAL_BPM = "BPM-17"
 WORST_THERMAL_COEFF_M_PER_K = 28e-6
 
-STEP = {
+STEP: dict[str, Any] = {
     "time": "10:42:00",
     "first_bpm": "BPM-09",
     "plane": "x",
     "amplitude_m": 35e-6,
     "corrector_current_A": (0.850, 0.900),
 }
-VIBRATION = {
+VIBRATION: dict[str, Any] = {
     "frequency_Hz": 1.8,
     "amplitude_x_m": {"BPM-05": 3.0e-6, "BPM-06": 4.0e-6},
     "amplitude_y_m": {"BPM-05": 1.0e-6, "BPM-06": 1.2e-6},
     "phase_rad": {"BPM-05": 0.0, "BPM-06": 0.4},
 }
-TRANSMISSION_DROP = {
+TRANSMISSION_DROP: dict[str, Any] = {
     "start": "11:20:00",
     "end": "11:35:00",
     "fraction": 0.02,
@@ -135,7 +135,7 @@ SUM_COUNTS = 1.0e4
 
 #: Wire scanners: design beta at the wire (m), wire resolution (rms, m), scan
 #: times (minutes after each full and half hour).
-WIRE = {
+WIRE: dict[str, dict[str, Any]] = {
     "WS-01": {"beta_x_m": 11.0, "beta_y_m": 7.0, "offset_m": (0.12e-3, -0.05e-3), "minute": 0},
     "WS-02": {"offset_m": (-0.08e-3, 0.10e-3), "minute": 2},
 }
@@ -145,7 +145,7 @@ WIRE_PERIOD_S = 1800.0
 
 #: Screens: pixel pitch (m), spot size (rms, m) and x-y correlation; SCR-02's
 #: size comes from the Q-07 optics at its nominal setting.
-SCREEN = {
+SCREEN: dict[str, dict[str, Any]] = {
     "SCR-01": {"pixel_size_m": 2.0e-5, "sigma_m": (420e-6, 260e-6), "rho": 0.35},
     "SCR-02": {"pixel_size_m": 1.5e-5, "rho": 0.0},
     "SCR-03": {"pixel_size_m": 2.5e-5, "sigma_m": (310e-6, 380e-6), "rho": -0.25},
@@ -166,7 +166,7 @@ HITS_PER_FRAME = 4
 #: The two quadrupole scans.  Twiss parameters are the true ones at the
 #: quadrupole entrance (the reconstruction point); ``design`` is what the
 #: optics model expects there (the beam is mismatched a little on purpose).
-SCANS = {
+SCANS: dict[str, dict[str, Any]] = {
     "Q-05": {
         "name": "Q-05 scan at WS-02",
         "folder": "2026-11-30T0815_Q-05_WS-02",
@@ -460,7 +460,7 @@ def _compact(ts: pd.Timestamp) -> str:
     return ts.strftime("%Y%m%dT%H%M%SZ")
 
 
-def temperature_swing_degC(seconds_since_start: np.ndarray) -> np.ndarray:
+def temperature_swing_degC(seconds_since_start: np.ndarray | float) -> np.ndarray:
     """The smooth part of the tunnel air temperature change, degC.
 
     A raised cosine of peak-to-peak ``TEMPERATURE["swing_degC"]`` that is zero at
@@ -891,7 +891,7 @@ def _write_frames(
 def scan_steps(scan: str) -> list[tuple[int, float, int]]:
     """``(step index, k1_per_m2, shot)`` of every entry of a demo scan, in order."""
     spec = SCANS[scan]
-    out = []
+    out: list[tuple[int, float, int]] = []
     for k in spec["k1_per_m2"]:
         for shot in range(spec["shots"]):
             out.append((len(out), float(k), shot))
