@@ -557,7 +557,7 @@ def _correlation_table(report: Any, n: int = 8) -> pd.DataFrame:
                 f"slope (µm per {c.unit or 'unit'})": _pm(
                     _num(c.slope_m_per_unit), _num(c.slope_err_m_per_unit), _UM, ""
                 ).strip(),
-                "lag (min)": _fmt(_num(c.lag_s) / 60.0 if _num(c.lag_s) is not None else None),
+                "lag (min)": _fmt(lag / 60.0 if (lag := _num(c.lag_s)) is not None else None),
                 "r": _fmt(_num(c.pearson_r)),
             }
             for c in top
