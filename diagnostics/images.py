@@ -415,7 +415,7 @@ def fit_gaussian_2d(
     xs = b * np.arange(cols) + 0.5 * (b - 1)
     ys = b * np.arange(rows) + 0.5 * (b - 1)
     gx, gy = np.meshgrid(xs, ys)
-    xy = (gx.ravel(), gy.ravel())
+    xy = np.stack((gx.ravel(), gy.ravel()))
     z = red.ravel()
     nan = math.nan
 
@@ -664,6 +664,7 @@ def analyze_image(
             cl = (slice(clean[1] - crop[1], clean[3] - crop[1]), slice(clean[0] - crop[0], clean[2] - crop[0]))
             sub[cl], n_hot = remove_hot_pixels(sub[cl], k=hot_pixel_k, noise=noise)
             img = sub - np.float32(bgv)
+        assert img is not None and crop is not None  # set on the first pass (clean starts as None)
         w_img = img[win[1] - crop[1]:win[3] - crop[1], win[0] - crop[0]:win[2] - crop[0]]
         tot, mx_, my_, sxx, syy, sxy = image_moments(w_img, x0=win[0], y0=win[1])
         if not tot > 0:
@@ -726,6 +727,7 @@ def analyze_image(
             notes.append(f"flat top: {n_top} pixels share the maximum value {top}")
     # clipping against the region (image or ROI) border
     band = CLIP_BAND_PX
+    assert img is not None and crop is not None  # the window loop ran at least once
     inner = img[max(win[1], band) - crop[1]:min(win[3], H - band) - crop[1], max(win[0], band) - crop[0]:min(win[2], W - band) - crop[0]]
     band_frac = (tot - float(inner.sum(dtype=np.float64))) / tot
     room = min(mx_ / sx_px, (W - 1 - mx_) / sx_px, my_ / sy_px, (H - 1 - my_) / sy_px)
