@@ -82,6 +82,7 @@ import functools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from typing import Any, cast
 
 import numpy as np
 from scipy import optimize, special
@@ -305,7 +306,7 @@ def least_squares_fit(
     jacobian: Callable[[np.ndarray, np.ndarray], np.ndarray] | None,
     x: np.ndarray,
     y: np.ndarray,
-    p0: Sequence[float],
+    p0: Sequence[float] | np.ndarray,
     *,
     weights: np.ndarray | None = None,
     absolute_weights: bool = False,
@@ -348,12 +349,15 @@ def least_squares_fit(
     def fun(p):
         return sw * (model(x, p) - y)
 
+    jac: str | Callable[[np.ndarray], np.ndarray]
     if jacobian is None:
         jac = "3-point"
     else:
 
-        def jac(p):
+        def jac_weighted(p):
             return sw[:, None] * jacobian(x, p)
+
+        jac = jac_weighted
 
     n, k = y.size, p0.size
     dof = n - k
@@ -1061,7 +1065,7 @@ def _gauss_shape_rows(g: dict, x: np.ndarray, reasons: list[str]) -> dict:
 
 def _shape_rows(shape: _Shape, x: np.ndarray, model: str) -> dict:
     """One non-Gaussian shape fit as rows for :func:`_assemble_rows`."""
-    sh = {k: np.array([getattr(shape, k)], dtype=float) for k in _SHAPE_KEYS}
+    sh: dict[str, Any] = {k: np.array([getattr(shape, k)], dtype=float) for k in _SHAPE_KEYS}
     sh["ok"] = np.array([shape.ok])
     sh["message"] = [shape.message]
     sh["fwhm"] = np.array([shape.fwhm])
@@ -1153,7 +1157,7 @@ def _assemble_rows(
     wn = float(window_n_sigma)
     out = []
     for i in range(n):
-        vals = rows_vals[i]
+        vals: tuple[float, ...] | list[float] = rows_vals[i]
         flags: tuple[str, ...] = ()
         message = ""
         extras = sh["extras"][i]
@@ -1187,8 +1191,10 @@ def _assemble_rows(
                 notes.append(f"non-Gaussian: Gaussian sigma {g['sigma'][i]:.4g} m vs rms {rms_c[i]:.4g} m")
             flags = merge_flags(fl)
             message = "; ".join(notes)
-        # positional, in the field order of ProfileResult
-        out.append(ProfileResult(*vals, m, model, flags, message, wn, *ext, g_sigma[i]))
+        # positional, in the field order of ProfileResult (one starred tuple: mypy
+        # cannot match fixed arguments that follow a starred one of unknown length)
+        args = (*vals, m, model, flags, message, wn, *ext, g_sigma[i])
+        out.append(ProfileResult(*args))
     return out
 
 
@@ -1219,7 +1225,8 @@ def _propagate(fn: Callable[[np.ndarray], float], p: np.ndarray, cov: np.ndarray
 def _fit_shape(x: np.ndarray, y: np.ndarray, gauss: GaussianFit, model: str, baseline: str, weights) -> _Shape:
     """Fit the halo or super-Gaussian model, starting from the Gaussian fit."""
     n_base = 2 if baseline == "linear" else 1
-    x_ref, h, s = _scales(x, y)
+    # one profile (1-D x, y): the per-row scales are scalars
+    x_ref, h, s = cast(tuple[float, float, float], _scales(x, y))
     t, yn = (x - x_ref) / h, y / s
     g_amp, g_mu, g_sig = gauss.amplitude / s, (gauss.centroid_m - x_ref) / h, gauss.sigma_m / h
     b0 = gauss.baseline_at(x_ref) / s
@@ -1241,7 +1248,7 @@ def _fit_shape(x: np.ndarray, y: np.ndarray, gauss: GaussianFit, model: str, bas
             z = t_ - p[1]
             return p[0] * np.exp(-0.5 * (z / p[2]) ** 2) + p[3] * np.exp(-0.5 * (z / p[4]) ** 2) + base(t_, p[5:])
 
-        p0 = [0.8 * g_amp, g_mu, 0.8 * g_sig, 0.2 * g_amp, 2.5 * g_sig] + base_p
+        p0: list[float] | np.ndarray = [0.8 * g_amp, g_mu, 0.8 * g_sig, 0.2 * g_amp, 2.5 * g_sig] + base_p
         lo = [0.0, t[0], 0.1 * dt, 0.0, 0.1 * dt] + base_lo
         hi = [np.inf, t[-1], 2 * span, np.inf, 4 * span] + base_hi
     else:
@@ -1562,7 +1569,7 @@ class _VarProGaussian:
                 beta0[sl] = sy / m
                 np.subtract(yb, beta0[sl, None], out=out)
             syy[sl] = _rowdot(out, out)
-        self.beta = (beta0, beta1) if n_base == 2 else (beta0,)
+        self.beta: tuple[np.ndarray, ...] = (beta0, beta1) if n_base == 2 else (beta0,)
         self.syy = syy
 
     def start(self) -> tuple[np.ndarray, np.ndarray]:
