@@ -58,7 +58,7 @@ def _field_names(cls: type) -> tuple[str, ...]:
 def jsonable(value: Any) -> Any:
     """Convert numpy / pandas / dataclass values into JSON-safe Python values."""
     # the common leaves first: this runs once per field of every stored result
-    kind = type(value)
+    kind: Any = type(value)
     if kind is float:
         return value if math.isfinite(value) else None
     if kind in _PLAIN:
