@@ -1584,6 +1584,13 @@ class Store:
 
     def _profiles_arrow(self, start, end, devices, scan, *, with_arrays: bool,
                         ids: Sequence[str] | None = None) -> pa.Table:
+        return self._items_arrow("profiles", PROFILES_SCHEMA, _PROFILE_ARRAYS, start, end, devices,
+                                 scan, with_arrays=with_arrays, ids=ids)
+
+    def _items_arrow(self, kind: str, schema: pa.Schema, arrays: Iterable[str], start, end, devices,
+                     scan, *, with_arrays: bool, ids: Sequence[str] | None) -> pa.Table:
+        """Live rows of ``kind`` (profiles or frames) for a window, devices, scan or ids,
+        superseded scan versions dropped, sorted by time; ``arrays`` columns only on request."""
         devices = _as_list(devices, "devices")
         expr = self._device_filter("device", devices)
         if scan is not None:
@@ -1592,9 +1599,8 @@ class Store:
         if ids is not None:
             e = ds.field("id").isin(list(ids))
             expr = e if expr is None else expr & e
-        cols = None if with_arrays else [f.name for f in PROFILES_SCHEMA
-                                         if f.name not in _PROFILE_ARRAYS]
-        table = self._drop_superseded(self._read_table("profiles", start=start, end=end,
+        cols = None if with_arrays else [f.name for f in schema if f.name not in arrays]
+        table = self._drop_superseded(self._read_table(kind, start=start, end=end,
                                                        filter=expr, columns=cols))
         return table.sort_by([("timestamp", "ascending"), ("id", "ascending")])
 
@@ -1635,19 +1641,8 @@ class Store:
 
     def _frames_arrow(self, start, end, devices, scan, *, with_pixels: bool,
                       ids: Sequence[str] | None = None) -> pa.Table:
-        devices = _as_list(devices, "devices")
-        expr = self._device_filter("device", devices)
-        if scan is not None:
-            e = ds.field("scan") == str(scan)
-            expr = e if expr is None else expr & e
-        if ids is not None:
-            e = ds.field("id").isin(list(ids))
-            expr = e if expr is None else expr & e
-        cols = None if with_pixels else [f.name for f in FRAMES_SCHEMA
-                                         if f.name not in _FRAME_ARRAYS]
-        table = self._drop_superseded(self._read_table("frames", start=start, end=end,
-                                                       filter=expr, columns=cols))
-        return table.sort_by([("timestamp", "ascending"), ("id", "ascending")])
+        return self._items_arrow("frames", FRAMES_SCHEMA, _FRAME_ARRAYS, start, end, devices, scan,
+                                 with_arrays=with_pixels, ids=ids)
 
     def frame_index(self, *, start: Any = None, end: Any = None,
                     devices: str | Iterable[str] | None = None,
