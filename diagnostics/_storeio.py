@@ -142,6 +142,31 @@ def fsync_dir(folder: Path) -> None:
             os.close(fd)
 
 
+@contextlib.contextmanager
+def atomic_file(final: Path, *, suffix: str = TEMP_SUFFIX) -> Iterator[Any]:
+    """An open binary file that appears at ``final`` whole or not at all.
+
+    Writes go to ``.<stem>.<uuid><suffix>`` in the same folder (a name that no
+    ``*.parquet`` glob matches); when the block ends without an exception the file
+    is flushed with ``fsync``, renamed over ``final`` with :func:`os.replace`
+    (atomic on POSIX file systems) and the folder flushed too.  On an exception
+    the temporary file is removed and nothing appears.
+    """
+    final.parent.mkdir(parents=True, exist_ok=True)
+    tmp = final.with_name(f".{final.stem}.{uuid.uuid4().hex[:12]}{suffix}")
+    try:
+        with open(tmp, "wb") as fh:
+            yield fh
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, final)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        raise
+    fsync_dir(final.parent)
+
+
 def atomic_write_table(
     table: pa.Table,
     final: Path,
@@ -151,51 +176,25 @@ def atomic_write_table(
     compression_level: int | Mapping[str, int] | None = 1,
     use_dictionary: bool | Sequence[str] = True,
 ) -> Path:
-    """Write ``table`` to ``final`` so that it appears whole or not at all.
-
-    The table goes to ``.<name>.<uuid>.parquet.tmp`` in the same folder, is
-    flushed with ``fsync``, and renamed over ``final`` with :func:`os.replace`
-    (atomic on POSIX file systems); the folder is then flushed as well.
-    """
-    final.parent.mkdir(parents=True, exist_ok=True)
-    tmp = final.with_name(f".{final.stem}.{uuid.uuid4().hex[:12]}{TEMP_SUFFIX}")
-    try:
-        with open(tmp, "wb") as fh:
-            pq.write_table(
-                table,
-                fh,
-                row_group_size=row_group_size,
-                compression=compression,
-                compression_level=compression_level,
-                use_dictionary=use_dictionary,
-                write_statistics=True,
-            )
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, final)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-        raise
-    fsync_dir(final.parent)
+    """Write ``table`` to ``final`` as Parquet so that it appears whole or not at all
+    (see :func:`atomic_file`)."""
+    with atomic_file(final) as fh:
+        pq.write_table(
+            table,
+            fh,
+            row_group_size=row_group_size,
+            compression=compression,
+            compression_level=compression_level,
+            use_dictionary=use_dictionary,
+            write_statistics=True,
+        )
     return final
 
 
 def atomic_write_bytes(data: bytes, final: Path) -> Path:
     """Write ``data`` to ``final`` with the same temp + fsync + rename rule."""
-    final.parent.mkdir(parents=True, exist_ok=True)
-    tmp = final.with_name(f".{final.name}.{uuid.uuid4().hex[:12]}.tmp")
-    try:
-        with open(tmp, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, final)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-        raise
-    fsync_dir(final.parent)
+    with atomic_file(final, suffix=f"{final.suffix}.tmp") as fh:
+        fh.write(data)
     return final
 
 

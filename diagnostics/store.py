@@ -82,6 +82,7 @@ import diagnostics
 from diagnostics._storeio import (
     TEMP_SUFFIX,
     Catalog,
+    atomic_file,
     atomic_write_bytes,
     atomic_write_table,
     file_sha256,
@@ -2101,33 +2102,24 @@ class Store:
         current = self._current_scan_versions() if kind in ("profiles", "frames", "scans") else {}
         options = _FRAME_WRITE if kind == "frames" else (
             _readings_write(schema) if kind in ("bpm", "slow") else {})
-        tmp = final.with_name(f".{final.stem}.{uuid.uuid4().hex[:12]}{TEMP_SUFFIX}")
         n_rows, tmin, tmax = 0, None, None
-        try:
-            with open(tmp, "wb") as fh:
-                writer = pq.ParquetWriter(
-                    fh, schema, compression=options.get("compression", "zstd"),
-                    compression_level=options.get("compression_level", 1),
-                    use_dictionary=options.get("use_dictionary", True))
-                for path in inputs:
-                    table = pq.read_table(self.root / path)
-                    if current:
-                        table = self._drop_superseded_with(table, current, kind)
-                    table = _sorted_by_time(_conform(table, schema))
-                    if table.num_rows:
-                        ts = pc.min_max(table.column("timestamp").cast(pa.int64()))
-                        tmin = ts["min"].as_py() if tmin is None else min(tmin, ts["min"].as_py())
-                        tmax = ts["max"].as_py() if tmax is None else max(tmax, ts["max"].as_py())
-                    writer.write_table(table, row_group_size=options.get("row_group_size"))
-                    n_rows += table.num_rows
-                writer.close()
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, final)
-        except BaseException:
-            with contextlib.suppress(OSError):
-                tmp.unlink()
-            raise
+        with atomic_file(final) as fh:
+            writer = pq.ParquetWriter(
+                fh, schema, compression=options.get("compression", "zstd"),
+                compression_level=options.get("compression_level", 1),
+                use_dictionary=options.get("use_dictionary", True))
+            for path in inputs:
+                table = pq.read_table(self.root / path)
+                if current:
+                    table = self._drop_superseded_with(table, current, kind)
+                table = _sorted_by_time(_conform(table, schema))
+                if table.num_rows:
+                    ts = pc.min_max(table.column("timestamp").cast(pa.int64()))
+                    tmin = ts["min"].as_py() if tmin is None else min(tmin, ts["min"].as_py())
+                    tmax = ts["max"].as_py() if tmax is None else max(tmax, ts["max"].as_py())
+                writer.write_table(table, row_group_size=options.get("row_group_size"))
+                n_rows += table.num_rows
+            writer.close()
         entry = {"path": rel, "kind": kind, "date": date, "rows": n_rows, "tmin_ns": tmin,
                  "tmax_ns": tmax, "bytes": final.stat().st_size, "schema": schema_blob(schema)}
         with self._catalog.connect() as con:
