@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import math
 import sys
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -38,3 +38,26 @@ def iter_files(paths: Iterable[str | Path], suffixes: tuple[str, ...] | None = N
                     yield child
         else:
             yield path
+
+
+def analyse_each(paths: Iterable[Path], analyse: Callable[[Path], dict[str, Any]], *,
+                 json_lines: bool, command: str) -> tuple[list[dict[str, Any]], int]:
+    """Run ``analyse`` on every input, whatever fails: ``(good records, failures)``.
+
+    With ``json_lines`` each record (good or failed, with its ``error``) is printed
+    as it comes and no records are kept; otherwise each failure is printed to
+    stderr as ``beamdiag COMMAND: error: ...`` and the good records are returned
+    for the caller's table.
+    """
+    good: list[dict[str, Any]] = []
+    failed = 0
+    for path in paths:
+        record = analyse(path)
+        failed += record["error"] is not None
+        if json_lines:
+            emit_json(record)
+        elif record["error"] is not None:
+            print(f"beamdiag {command}: error: {record['error']}", file=sys.stderr)
+        else:
+            good.append(record)
+    return good, failed

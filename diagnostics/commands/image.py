@@ -20,11 +20,10 @@ from __future__ import annotations
 
 import argparse
 import math
-import sys
 from pathlib import Path
 from typing import Any
 
-from diagnostics.commands._common import emit_json
+from diagnostics.commands._common import analyse_each
 from diagnostics.commands.profile import expand, length, table
 from diagnostics.errors import BeamdiagError
 
@@ -67,21 +66,11 @@ def analyse(path: Path, args: argparse.Namespace) -> dict[str, Any]:
 
 
 def run(args: argparse.Namespace) -> int:
-    records = []
-    failed = 0
-    for path in expand(args.files, KIND):
-        rec = analyse(path, args)
-        failed += rec["error"] is not None
-        if args.json:
-            emit_json(rec)
-        else:
-            records.append(rec)
+    records, failed = analyse_each(expand(args.files, KIND), lambda path: analyse(path, args),
+                                   json_lines=args.json, command="image")
     if not args.json:
         rows = []
         for rec in records:
-            if rec["error"] is not None:
-                print(f"beamdiag image: error: {rec['error']}", file=sys.stderr)
-                continue
             tilt = rec["tilt_rad"]
             rows.append([
                 Path(rec["file"]).name, rec["device"] or "-",

@@ -18,11 +18,10 @@ done.
 from __future__ import annotations
 
 import argparse
-import sys
 from pathlib import Path
 from typing import Any
 
-from diagnostics.commands._common import emit_json
+from diagnostics.commands._common import analyse_each
 from diagnostics.errors import BeamdiagError
 
 KIND = "profiles"
@@ -97,21 +96,11 @@ def table(rows: list[list[str]], header: list[str], n_text: int = 3) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    records = []
-    failed = 0
-    for path in expand(args.files, KIND):
-        rec = analyse(path, args)
-        failed += rec["error"] is not None
-        if args.json:
-            emit_json(rec)
-        else:
-            records.append(rec)
+    records, failed = analyse_each(expand(args.files, KIND), lambda path: analyse(path, args),
+                                   json_lines=args.json, command="profile")
     if not args.json:
         rows = []
         for rec in records:
-            if rec["error"] is not None:
-                print(f"beamdiag profile: error: {rec['error']}", file=sys.stderr)
-                continue
             sig = length(rec["sigma_m"])
             if rec["sigma_err_m"] is not None and rec["sigma_m"] is not None:
                 sig += f" +- {length(rec['sigma_err_m']).split()[0]}"
