@@ -37,6 +37,7 @@ import pandas as pd
 
 from diagnostics import SAFETY_NOTE, __version__
 from diagnostics.errors import InputError
+from diagnostics.orbit import LimitViolation as LimitEvent  # a merged run of intervals, same fields
 
 #: Keys of the tables a report can hold, in page order (see :meth:`Report.table`).
 REPORT_TABLES = ("emittance", "orbit", "steps", "limits", "losses", "correlations", "sizes", "data")
@@ -98,19 +99,6 @@ class StepEvent:
     largest_m: float
     largest_err_m: float
     largest_bpm: str
-
-
-@dataclass(frozen=True)
-class LimitEvent:
-    """Consecutive out-of-tolerance intervals of one BPM plane merged into one event."""
-
-    bpm: str
-    plane: str
-    quantity: str
-    start: pd.Timestamp
-    end: pd.Timestamp
-    worst_m: float
-    limit_m: float
 
 
 @dataclass(frozen=True, eq=False)
