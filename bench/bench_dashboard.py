@@ -43,15 +43,20 @@ ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-net
 FIRST_RENDER_BUDGET_S = 3.0
 WINDOW_CHANGE_BUDGET_S = 1.0
 
+#: A chart element of either kind the pages use (Vega-Lite on the Shift page, Plotly elsewhere).
+CHART_SELECTOR = ('[data-testid="stEChartsChart"], [data-testid="stVegaLiteChart"], '
+                  '[data-testid="stPlotlyChart"]')
+#: ... and one that has been drawn (a canvas or an SVG with marks inside it).
+DRAWN = "e => e.querySelector('canvas, .main-svg, svg.marks')"
+
 #: The rerun is over: the window caption changed and no element is still marked stale.
 PAGE_REDRAWN = """(b) => [...document.querySelectorAll('[data-testid="stCaptionContainer"]')]
         .some(e => e.innerText.includes('Showing:') && e.innerText !== b)
     && document.querySelectorAll('[data-stale="true"]').length === 0
-    && document.querySelectorAll('[data-testid="stPlotlyChart"]').length >= 3"""
+    && document.querySelectorAll(CHARTS).length >= 3""".replace("CHARTS", repr(CHART_SELECTOR))
 
-#: At least ``n`` drawn charts, the empty stand-in of a first visit not counted.
-REAL_CHARTS = """(n) => [...document.querySelectorAll('[data-testid="stPlotlyChart"]')]
-    .filter(e => e.querySelector('.main-svg') && !e.closest('.st-key-shift_trends_pending')).length >= n"""
+#: At least ``n`` drawn charts.
+REAL_CHARTS = f"""(n) => [...document.querySelectorAll({CHART_SELECTOR!r})].filter({DRAWN}).length >= n"""
 
 HEADLINE_DONE = """() => { const m = [...document.querySelectorAll('[data-testid="stMetric"]')];
     return m.length >= 5 && !m.some(e => e.innerText.includes('…')); }"""

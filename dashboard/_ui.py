@@ -243,6 +243,15 @@ def fmt_pm(value: Any, err: Any, scale: float = 1.0, unit: str = "", digits: int
     return text if text == "–" else f"{text} {rest}".strip()
 
 
+#: Unit names as stored (ASCII, as the channel files give them) -> as operators read them.
+UNIT_TEXT = {"degc": "°C", "deg c": "°C", "c": "°C", "degk": "K", "k": "K", "um": "µm", "mm": "mm", "m": "m"}
+
+
+def unit_text(unit: Any) -> str:
+    """A stored unit name the way it is shown (``degC`` -> ``°C``); unknown names unchanged."""
+    return UNIT_TEXT.get(str(unit).strip().lower(), str(unit))
+
+
 def fmt_time(ts: Any) -> str:
     """``2026-11-30 13:59:58 UTC``; '–' when missing."""
     if ts is None or (isinstance(ts, float) and math.isnan(ts)) or ts is pd.NaT:

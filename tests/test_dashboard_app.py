@@ -481,10 +481,19 @@ def test_a_failing_orbit_analysis_costs_its_numbers_not_the_page(monkeypatch, de
 
 
 def chart_specs(at: AppTest) -> dict[str, dict]:
-    """The plotly figures of the page as sent to the browser, by element key."""
+    """The Shift page's ECharts options as sent to the browser, by element key."""
     import json
 
-    return {c.proto.id.rsplit("-", 1)[-1]: json.loads(c.proto.spec) for c in at.get("plotly_chart")}
+    return {c.proto.id.rsplit("-", 1)[-1]: json.loads(c.proto.spec) for c in at.get("echarts_chart")}
+
+
+def chart_tables(at: AppTest, key: str) -> list[pd.DataFrame]:
+    """The Arrow tables sent with the chart ``key``, in the order of its ``dataset`` list."""
+    import pyarrow as pa
+
+    (element,) = [c for c in at.get("echarts_chart") if c.proto.id.endswith("-" + key)]
+    tables = {d.name: pa.ipc.open_stream(d.data.data).read_all().to_pandas() for d in element.proto.datasets}
+    return [tables[entry["source"]["name"]] for entry in chart_specs(at)[key]["dataset"]]
 
 
 def test_shift_headline_is_sent_before_the_charts_on_a_first_visit(monkeypatch, demo_store):
@@ -496,38 +505,41 @@ def test_shift_headline_is_sent_before_the_charts_on_a_first_visit(monkeypatch, 
     at.run()  # the run the page's timer asks for
     assert "Drawing the trends" not in captions(at)
     assert {"Beam sizes", "Emittance", "Orbit drift per BPM", "Temperatures"} <= {s.value for s in at.subheader}
-    assert {"shift_sizes", "shift_orbit", "shift_temps"} <= set(chart_specs(at))
+    assert {"shift_sizes", "shift_orbit_x", "shift_orbit_y", "shift_temps"} <= set(chart_specs(at))
 
 
-def test_shift_drift_chart_is_decimated_and_sent_as_binary_numbers(monkeypatch, demo_store):
-    """Long series leave the server as bucket means (and min/max), as base64 binary blocks.
+def test_shift_drift_chart_is_decimated_and_sent_as_arrow(monkeypatch, demo_store):
+    """Long series leave the server as bucket means (and min/max) in Arrow tables, not inline JSON.
 
-    Plotly's JSON encoder writes a numeric numpy array as ``{"dtype", "bdata"}``
-    (plotly.io.to_json); the times go as milliseconds on a date axis.
+    Each plane is one table of at most ``DRIFT_POINTS`` buckets with a column per
+    BPM; every BPM is one line series reading its column, and the time axis spans
+    exactly the window shown.
     """
-    import base64
-
     from dashboard.views import shift
+    from diagnostics.store import Store
 
     at = app_for(monkeypatch, demo_store)
     at.run()
     specs = chart_specs(at)
-    fig = specs["shift_orbit"]
-    assert fig["layout"]["xaxis"]["type"] == "date" and fig["layout"]["xaxis2"]["type"] == "date"
-    bpm_traces = [t for t in fig["data"] if str(t.get("name", "")).startswith("BPMs ")]
-    assert len(bpm_traces) == 2  # one trace per plane, all BPMs in it
-    for tr in fig["data"]:
-        for axis in ("x", "y"):
-            values = tr.get(axis)
-            if values is None or values == [None]:
-                continue
-            assert isinstance(values, dict) and "bdata" in values, (tr.get("name"), axis)
-    for tr in bpm_traces:
-        n = len(base64.b64decode(tr["y"]["bdata"])) // 4  # float32
-        n_bpms = len(set(tr["customdata"]))
-        assert n / n_bpms <= shift.DRIFT_POINTS + 1  # each BPM's buckets and its NaN separator
-    for key in ("shift_sizes", "shift_temps"):
-        assert specs[key]["layout"]["xaxis"]["type"] == "date"
+    start, end = shown_window(at)  # (the caption gives whole seconds)
+    n_bpms = Store(demo_store, read_only=True).read_bpm()["bpm"].nunique()
+    second = pd.Timedelta(seconds=1)
+    for plane in ("x", "y"):
+        key = f"shift_orbit_{plane}"
+        option = specs[key]
+        (table,) = chart_tables(at, key)
+        assert len(table) <= shift.DRIFT_POINTS
+        bpm_lines = [s for s in option["series"] if s.get("datasetIndex") == 0 and "stack" not in s]
+        assert len(bpm_lines) == n_bpms
+        assert {s["encode"]["y"] for s in bpm_lines} <= set(table.columns)
+        for series in option["series"]:
+            assert "data" not in series or series["data"] == []  # no values inline
+        axis = option["xAxis"]
+        assert axis["type"] == "time" and option["useUTC"] is True
+        axis_start, axis_end = (pd.Timestamp(axis[k], unit="ms", tz="UTC") for k in ("min", "max"))
+        assert abs(axis_start - start) < second and abs(axis_end - end) < second
+        t = pd.to_datetime(table["t"], unit="ms", utc=True)  # the buckets lie on the axis
+        assert t.min() >= axis_start.floor("min") and t.max() <= axis_end
 
 
 def test_shift_warms_the_other_preset_windows_so_a_change_reads_no_trends(monkeypatch, demo_store):
@@ -553,4 +565,4 @@ def test_shift_warms_the_other_preset_windows_so_a_change_reads_no_trends(monkey
     assert not at.error, [e.value for e in at.error]
     start, end = shown_window(at)
     assert end - start <= pd.Timedelta(minutes=10, seconds=1)
-    assert {"shift_orbit", "shift_temps"} <= set(chart_specs(at))
+    assert {"shift_orbit_x", "shift_temps"} <= set(chart_specs(at))

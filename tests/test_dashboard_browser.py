@@ -103,6 +103,13 @@ def browser():
             b.close()
 
 
+#: The Shift page's trends (ECharts) and the other pages' charts (Plotly).
+SHIFT_CHART = '[data-testid="stEChartsChart"]'
+#: At least ``n`` charts of either kind drawn (their canvas or SVG is in the page).
+CHARTS_DRAWN = """(n) => [...document.querySelectorAll('[data-testid="stEChartsChart"], [data-testid="stPlotlyChart"]')]
+    .filter(e => e.querySelector('canvas, .main-svg')).length >= n"""
+
+
 def wait_headline(page, timeout_s: float = 60.0) -> None:
     """Wait until the Shift headline has its orbit numbers (no '…' placeholder left)."""
     page.wait_for_selector('[data-testid="stMetric"]', timeout=timeout_s * 1000)
@@ -137,7 +144,7 @@ def test_every_page_renders_its_headline_in_chromium(server, browser):
         first_metric_s = time.perf_counter() - t0
         wait_headline(page)
         headline_s = time.perf_counter() - t0
-        page.wait_for_selector('[data-testid="stPlotlyChart"]', timeout=60_000)
+        page.wait_for_function(CHARTS_DRAWN, arg=1, timeout=60_000)
         print(f"\nShift first render: metrics {first_metric_s:.2f} s, orbit headline {headline_s:.2f} s")
         for path, (name, texts) in PAGES.items():
             if path:
@@ -151,8 +158,8 @@ def test_every_page_renders_its_headline_in_chromium(server, browser):
             assert page.get_by_text("not a machine-protection", exact=False).count() >= 1
             page.screenshot(path=str(SHOTS / f"{name}.png"), full_page=True)
             if name == "shift":  # the trends below the fold: drift, temperatures
-                assert page.locator('[data-testid="stPlotlyChart"]').count() >= 4
-                page.locator('[data-testid="stPlotlyChart"]').last.scroll_into_view_if_needed()
+                page.wait_for_function(CHARTS_DRAWN, arg=5, timeout=60_000)  # sizes, emittance, drift x/y, temps
+                page.locator(SHIFT_CHART).last.scroll_into_view_if_needed()
                 page.wait_for_timeout(500)
                 page.screenshot(path=str(SHOTS / "shift_trends.png"))
         assert not errors, errors
@@ -167,8 +174,7 @@ def test_window_change_updates_the_shift_page_quickly(server, browser):
         page.goto(server + "/", wait_until="domcontentloaded")
         wait_headline(page)
         # a window change on a drawn page: the charts follow the headline in a second run
-        page.wait_for_function("() => document.querySelectorAll('[data-testid=\"stPlotlyChart\"]').length >= 4",
-                               timeout=60_000)
+        page.wait_for_function(CHARTS_DRAWN, arg=5, timeout=60_000)
         page.wait_for_timeout(1000)
         caption = page.get_by_text("Showing:", exact=False).first
         before = caption.inner_text()

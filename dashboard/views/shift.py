@@ -10,11 +10,9 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-import plotly.graph_objects as go
 import streamlit as st
-from plotly.subplots import make_subplots
 
-from dashboard import _data, _ui
+from dashboard import _data, _echarts, _ui
 
 #: Refresh intervals of the live panels while the watch service runs, seconds.
 LIVE_HEADLINE_S = 10
@@ -216,45 +214,83 @@ def not_in_scans(results: pd.DataFrame) -> pd.DataFrame:
     return results[results["scan"].isna()]
 
 
-def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
-    fig = go.Figure()
-    n = 0
-    prof = not_in_scans(_data.results(root, stamp, "profiles", window.key))
+def chart(option: dict, *, key: str, height: int) -> None:
+    """Draw a trend with ECharts (see :mod:`dashboard._echarts` for why not Plotly here)."""
+    st.echarts_chart(option, height=height, key=key, theme="streamlit")
+
+
+def span_ms(window: _data.Window) -> tuple[float, float]:
+    """The window in ms since the epoch: every trend's time axis spans it exactly."""
+    start, end = _ui.times_ms([window.start, window.end])
+    return float(start), float(end)
+
+
+def marks(events: pd.DataFrame, window: _data.Window) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The events to mark on a trend of ``window`` (lines and bands, cut to the window)."""
+    return _echarts.event_frames(events, _ui.times_ms, span_ms(window))
+
+
+def size_points(prof: pd.DataFrame, frames: pd.DataFrame) -> pd.DataFrame:
+    """Routine beam-size results as chart rows: wire-scan sigma with error, screen projections."""
+    parts = []
     if not prof.empty and "sigma_m" in prof:
-        for (device, plane), grp in prof.groupby(["device", "plane"], sort=True):
-            n += len(grp)
-            fig.add_trace(go.Scatter(
-                x=_ui.times_ms(grp["timestamp"]), y=grp["sigma_m"] * _ui.UM_PER_M,
-                error_y=dict(array=grp.get("sigma_err_m", pd.Series(np.nan, index=grp.index)) * _ui.UM_PER_M,
-                             visible=True, thickness=1),
-                mode="markers+lines", name=f"{device} {plane}", marker=dict(size=6),
-                hovertemplate="%{y:.1f} µm<extra>" + f"{device} {plane}</extra>"))
+        err = prof["sigma_err_m"] if "sigma_err_m" in prof else pd.Series(np.nan, index=prof.index)
+        parts.append(pd.DataFrame({
+            "t": _ui.times_ms(prof["timestamp"]), "series": (prof["device"].astype(str) + " " + prof["plane"].astype(str)),
+            "source": "wire scan", "value": prof["sigma_m"].to_numpy(float) * _ui.UM_PER_M,
+            "err": err.to_numpy(float) * _ui.UM_PER_M, "si": prof["sigma_m"].to_numpy(float), "note": "σ (m)"}))
+    for plane in ("x", "y"):
+        col = f"projection_{plane}_sigma_m"
+        if frames.empty or col not in frames:
+            continue
+        parts.append(pd.DataFrame({
+            "t": _ui.times_ms(frames["timestamp"]), "series": frames["device"].astype(str) + f" {plane}",
+            "source": "screen", "value": frames[col].to_numpy(float) * _ui.UM_PER_M, "err": np.nan,
+            "si": frames[col].to_numpy(float), "note": "projection σ (m)"}))
+    if not parts:
+        return pd.DataFrame(columns=["t", "series", "source", "value", "err", "lo", "hi", "si", "note"])
+    out = pd.concat(parts, ignore_index=True)
+    out = out[np.isfinite(out["value"])].sort_values(["series", "t"], kind="stable").reset_index(drop=True)
+    out["lo"], out["hi"] = out["value"] - out["err"], out["value"] + out["err"]
+    return out
+
+
+def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
+    prof = not_in_scans(_data.results(root, stamp, "profiles", window.key))
     try:
         frames = _data.results(root, stamp, "frames", window.key)
     except Exception as exc:  # noqa: BLE001 - one result kind unreadable: show the others
         frames = pd.DataFrame()
         st.caption(f"Screen sizes not shown: the stored screen results cannot be read "
                    f"({type(exc).__name__}).")
-    frames = not_in_scans(frames)
-    if not frames.empty:
-        for plane in ("x", "y"):
-            col = f"projection_{plane}_sigma_m"
-            if col not in frames:
-                continue
-            for device, grp in frames.groupby("device", sort=True):
-                n += len(grp)
-                fig.add_trace(go.Scatter(
-                    x=_ui.times_ms(grp["timestamp"]), y=grp[col] * _ui.UM_PER_M,
-                    mode="markers", marker=dict(size=4, symbol="diamond"), name=f"{device} {plane}",
-                    hovertemplate="%{y:.1f} µm<extra>" + f"{device} {plane}</extra>"))
+    data = size_points(prof, not_in_scans(frames))
     st.subheader("Beam sizes")
-    if n == 0:
+    if data.empty:
         st.caption("No analysed wire scans or screen images in the window.")
         return
-    _ui.mark_events(fig, events)
-    _ui.date_axes(fig)
-    _ui.base_layout(fig, y_title="rms size σ (µm)", height=340)
-    _ui.plot(fig, key="shift_sizes")
+    chart(_echarts.results_chart(data, y_title="rms size σ (µm)", unit="µm", si_unit="m", lines=True,
+                                 domain_ms=span_ms(window), events=marks(events, window),
+                                 event_colours=_ui.EVENT_COLOURS),
+          key="shift_sizes", height=360)
+
+
+def emittance_points(res: pd.DataFrame) -> pd.DataFrame:
+    """Quad-scan results as chart rows, one per plane and scan (mm mrad, SI alongside)."""
+    parts = []
+    for plane in ("x", "y"):
+        col = f"{plane}_norm_emittance_m_rad"
+        if col not in res:
+            continue
+        err = res.get(f"{plane}_norm_emittance_err_m_rad", pd.Series(np.nan, index=res.index))
+        value = res[col].to_numpy(float)
+        parts.append(pd.DataFrame({
+            "t": _ui.times_ms(res["timestamp"]), "series": f"ε{plane} (norm.)", "source": "quad scan",
+            "value": value * _ui.MM_MRAD_PER_M_RAD, "err": err.to_numpy(float) * _ui.MM_MRAD_PER_M_RAD,
+            "si": value, "note": res.get("scan_name", pd.Series("", index=res.index)).astype(str).to_numpy()}))
+    out = pd.concat(parts, ignore_index=True)
+    out = out[np.isfinite(out["value"])].reset_index(drop=True)
+    out["lo"], out["hi"] = out["value"] - out["err"], out["value"] + out["err"]
+    return out
 
 
 def emittance_trend(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
@@ -263,20 +299,22 @@ def emittance_trend(root: str, stamp: str, window: _data.Window, events: pd.Data
     if res.empty or "x_norm_emittance_m_rad" not in res:
         st.caption("No quad-scan results in the window.")
         return
-    fig = go.Figure()
-    t = _ui.times(res["timestamp"])
-    for plane, colour in (("x", "#1f77b4"), ("y", "#d62728")):
-        err = res.get(f"{plane}_norm_emittance_err_m_rad")
-        fig.add_trace(go.Scatter(
-            x=t, y=res[f"{plane}_norm_emittance_m_rad"] * _ui.MM_MRAD_PER_M_RAD, mode="markers",
-            marker=dict(size=10, color=colour), name=f"ε{plane} (norm.)",
-            error_y=dict(array=None if err is None else err * _ui.MM_MRAD_PER_M_RAD, visible=True),
-            text=res.get("scan_name"),
-            hovertemplate="%{y:.3f} mm mrad<br>%{text}<extra>" + f"{plane}</extra>"))
-    _ui.mark_events(fig, events)
-    _ui.base_layout(fig, y_title="normalised emittance (mm mrad)", height=340)
-    fig.update_xaxes(range=list(_ui.times([window.start, window.end])))
-    _ui.plot(fig, key="shift_emittance")
+    data = emittance_points(res)
+    if data.empty:
+        st.caption("The quad-scan results in the window hold no emittance (every fit failed).")
+        return
+    chart(_echarts.results_chart(data, y_title="normalised emittance (mm mrad)", unit="mm mrad", si_unit="m rad",
+                                 domain_ms=span_ms(window), events=marks(events, window),
+                                 event_colours=_ui.EVENT_COLOURS,
+                                 fixed_colours={"εx (norm.)": "#1f77b4", "εy (norm.)": "#d62728"}),
+          key="shift_emittance", height=360)
+
+
+def drift_wide(times, bpms, values: np.ndarray) -> pd.DataFrame:
+    """Drift per bucket (rows) and BPM (columns), µm as float32, times in ms."""
+    frame = pd.DataFrame((values * _ui.UM_PER_M).astype(np.float32), columns=list(bpms))
+    frame.insert(0, "t", _ui.times_ms(times))
+    return frame
 
 
 def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.DataFrame) -> None:
@@ -297,41 +335,25 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
             highlight = None
     else:
         highlight = (worst.bpm, worst.plane)
-    fig = make_subplots(rows=2, cols=1, shared_xaxes=True, vertical_spacing=0.06)
-    t = _ui.times_ms(times)  # numbers on a date axis: sent as one binary block
-    for r, (plane, values) in enumerate((("x", dx), ("y", dy)), start=1):
-        # all BPMs of a plane as one trace, separated by gaps: one trace is far cheaper than 24
-        cols = [j for j, bpm in enumerate(bpms) if highlight != (bpm, plane)]
-        # (a NaN after each BPM's series breaks the line before the next one starts)
-        xs = np.tile(np.concatenate([t, t[-1:]]), len(cols))
-        ys = np.concatenate([np.append(values[:, j] * _ui.UM_PER_M, np.nan) for j in cols]) if cols else xs[:0]
-        ys = ys.astype(np.float32)  # half the bytes; the hover shows 0.1 µm
-        names = np.repeat([bpms[j] for j in cols], t.size + 1)
-        fig.add_trace(go.Scatter(x=xs, y=ys, customdata=names, mode="lines",
-                                 name=f"BPMs {plane}", showlegend=False, connectgaps=False,
-                                 line=dict(width=0.8, color="#5b7fa6"), opacity=0.55,
-                                 hovertemplate="%{y:.1f} µm<extra>%{customdata} " + plane + "</extra>"),
-                      row=r, col=1)
-    if highlight is not None:
-        bpm, plane = highlight
-        j = bpms.index(bpm)
-        values = dx if plane == "x" else dy
-        # the band is the min/max of the raw readings in each bucket, on the drift's offset
-        sub = tr[tr["device"] == bpm].set_index("timestamp")
-        offset = (sub[f"{plane}_m_mean"].reindex(times).to_numpy() - values[:, j])
-        _ui.add_envelope(fig, times, values[:, j], sub[f"{plane}_m_min"].reindex(times).to_numpy() - offset,
-                         sub[f"{plane}_m_max"].reindex(times).to_numpy() - offset,
-                         name=f"{bpm} {plane} (largest drift)", colour="#d62728", scale=_ui.UM_PER_M,
-                         unit="µm", row=1 if plane == "x" else 2, col=1)
-    _ui.mark_events(fig, events)
-    _ui.date_axes(fig)
-    _ui.base_layout(fig, height=440)
-    fig.update_yaxes(title="x drift (µm)", row=1, col=1)
-    fig.update_yaxes(title="y drift (µm)", row=2, col=1)
-    _ui.plot(fig, key="shift_orbit")
+    ev = marks(events, window)
+    for plane, values in (("x", dx), ("y", dy)):
+        pick = highlight[0] if highlight is not None and highlight[1] == plane else None
+        wide = drift_wide(times, bpms, values)
+        if pick is not None:
+            j = bpms.index(pick)
+            # the band is the min/max of the raw readings in each bucket, on the drift's offset
+            sub = tr[tr["device"] == pick].set_index("timestamp")
+            offset = sub[f"{plane}_m_mean"].reindex(times).to_numpy() - values[:, j]
+            lo = (sub[f"{plane}_m_min"].reindex(times).to_numpy() - offset) * _ui.UM_PER_M
+            hi = (sub[f"{plane}_m_max"].reindex(times).to_numpy() - offset) * _ui.UM_PER_M
+            wide["band lo"], wide["band span"] = lo.astype(np.float32), (hi - lo).astype(np.float32)
+        chart(_echarts.drift_chart(wide, bpms, y_title=f"{plane} drift (µm)", domain_ms=span_ms(window),
+                                   events=ev, event_colours=_ui.EVENT_COLOURS, highlight=pick),
+              key=f"shift_orbit_{plane}", height=230)
     st.caption(f"{len(bpms)} BPMs, {bucket} bucket means minus the reference orbit (first "
-               f"{_data.library('orbit').DEFAULT_REFERENCE_MINUTES:g} min); the BPM with the largest "
-               "drift in red with the min/max of its readings.")
+               f"{_data.library('orbit').DEFAULT_REFERENCE_MINUTES:g} min)"
+               + (f"; {highlight[0]} {highlight[1]}, the largest drift, in red with the min/max of its readings"
+                  if highlight is not None else "") + ".")
 
 
 def temperature_channels(slow: pd.DataFrame) -> tuple[pd.Series, tuple[str, ...]]:
@@ -356,13 +378,29 @@ def temperatures(root: str, stamp: str, window: _data.Window, events: pd.DataFra
         st.caption("No temperature channels in the window.")
         return
     tr = temperature_trend(root, stamp, window, temps)
-    fig = go.Figure()
-    for ch, grp in tr.groupby("device", sort=True):
-        _ui.add_envelope(fig, grp["timestamp"], grp["value_mean"], grp["value_min"], grp["value_max"],
-                         name=ch, unit=str(units[ch]))
-    _ui.mark_events(fig, events)
-    _ui.base_layout(fig, y_title=f"temperature ({units[temps[0]]})", height=420)
-    _ui.plot(fig, key="shift_temps")
+    by_unit = units.loc[list(temps)].astype(str)
+    unit = _ui.unit_text(by_unit.iloc[0])
+    shown = [ch for ch in temps if by_unit[ch] == by_unit.iloc[0]]  # one axis: the channels in the first unit
+    tr = tr[tr["device"].isin(shown)]
+    wide = temperature_wide(tr, shown)
+    chart(_echarts.envelope_chart(wide, shown, y_title=f"temperature ({unit})", unit=unit,
+                                  domain_ms=span_ms(window), events=marks(events, window),
+                                  event_colours=_ui.EVENT_COLOURS),
+          key="shift_temps", height=420)
+    if len(shown) < len(temps):
+        st.caption(f"Channels in other units not shown here: {', '.join(c for c in temps if c not in shown)}.")
+
+
+def temperature_wide(tr: pd.DataFrame, channels) -> pd.DataFrame:
+    """Bucket mean, min and max-min per channel as columns on the common time buckets."""
+    wide = tr.pivot_table(index="timestamp", columns="device", values=["value_mean", "value_min", "value_max"],
+                          aggfunc="first", dropna=False).sort_index()
+    out = pd.DataFrame({"t": _ui.times_ms(wide.index)})
+    for ch in channels:
+        mean, lo, hi = (wide[(col, ch)].to_numpy(float) if (col, ch) in wide else np.full(len(wide), np.nan)
+                        for col in ("value_mean", "value_min", "value_max"))
+        out[ch], out[f"{ch} lo"], out[f"{ch} span"] = mean, lo, hi - lo
+    return out
 
 
 def warm_window(root: str, stamp: str, window: _data.Window) -> None:
