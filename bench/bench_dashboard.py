@@ -41,9 +41,11 @@ CHROMIUM = "/usr/bin/chromium"
 ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
         "--disable-component-update", "--disable-sync", "--no-first-run"]
 FIRST_RENDER_BUDGET_S = 3.0
+#: Charts on the Shift page of a store with scans: sizes, emittance, drift x and y, temperatures.
+SHIFT_CHARTS = 5
 WINDOW_CHANGE_BUDGET_S = 1.0
 
-#: A chart element of either kind the pages use (Vega-Lite on the Shift page, Plotly elsewhere).
+#: A chart element of any kind the pages use (ECharts on the Shift page, Plotly elsewhere).
 CHART_SELECTOR = ('[data-testid="stEChartsChart"], [data-testid="stVegaLiteChart"], '
                   '[data-testid="stPlotlyChart"]')
 #: ... and one that has been drawn (a canvas or an SVG with marks inside it).
@@ -104,7 +106,7 @@ def first_render(browser, base: str) -> dict[str, float]:
     t_chart = time.perf_counter() - t0
     page.wait_for_function(HEADLINE_DONE, timeout=300_000)
     t_orbit = time.perf_counter() - t0
-    page.wait_for_function(REAL_CHARTS, arg=4, timeout=180_000)
+    page.wait_for_function(REAL_CHARTS, arg=SHIFT_CHARTS, timeout=180_000)
     t_charts = time.perf_counter() - t0
     return {"page": page, "ctx": ctx, "metrics": t_metrics, "chart": t_chart, "orbit": t_orbit,
             "charts": t_charts, "bytes": sum(sizes), "largest": max(sizes, default=0), "sizes": sizes}
@@ -116,12 +118,17 @@ def window_change(page, sizes: list[int]) -> dict[str, float]:
     sizes.clear()
     t0 = time.perf_counter()
     page.get_by_test_id("stSelectbox").first.click()
-    page.get_by_role("option", name="Last 30 min").click()
+    option = page.get_by_role("option", name="Last 30 min")
+    option.wait_for()
+    t_open = time.perf_counter() - t0
+    t1 = time.perf_counter()
+    option.click()
     page.wait_for_function(PAGE_REDRAWN, arg=before, timeout=120_000)
-    t_page = time.perf_counter() - t0
+    t_page = time.perf_counter() - t1
     page.wait_for_function(HEADLINE_DONE, timeout=300_000)
-    t_orbit = time.perf_counter() - t0
-    return {"page": t_page, "orbit": t_orbit, "bytes": sum(sizes), "largest": max(sizes, default=0)}
+    t_orbit = time.perf_counter() - t1
+    return {"open": t_open, "page": t_page, "orbit": t_orbit, "bytes": sum(sizes),
+            "largest": max(sizes, default=0)}
 
 
 def streamlit_floor(browser) -> float:
@@ -173,9 +180,15 @@ def plain_reference(store: Path) -> tuple[float, int]:
     return time.perf_counter() - t0, len(bpm)
 
 
+def median_run(runs: list[dict], key) -> dict:
+    """The run whose ``key`` is the median (the upper one of an even count)."""
+    return sorted(runs, key=key)[len(runs) // 2]
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--store", default=os.environ.get("BEAMDIAG_STORE") or "demo-store")
+    parser.add_argument("--repeat", type=int, default=5, help="warm sessions to measure (median reported)")
     args = parser.parse_args()
     store = Path(args.store)
     note = ""
@@ -197,29 +210,40 @@ def main() -> int:
             floor = streamlit_floor(browser)
             cold = first_render(browser, base)
             cold["ctx"].close()
-            warm = first_render(browser, base)
-            change = window_change(warm["page"], warm["sizes"])
-            warm["ctx"].close()
+            warms, changes = [], []
+            for _ in range(args.repeat):  # new sessions on the running server, one window change each
+                warm = first_render(browser, base)
+                changes.append(window_change(warm["page"], warm["sizes"]))
+                warm["ctx"].close()
+                warms.append(warm)
             browser.close()
     finally:
         proc.terminate()
         proc.wait(timeout=30)
     print(f"store: {store}{note}; {n_readings:,} BPM readings in the shift window")
     print(f"plain reference (read all readings + analyze_orbit, synchronous): {ref_s:.2f} s")
-    for name, r in (("cold server", cold), ("warm server, new session", warm)):
+    warm = median_run(warms, lambda r: max(r["charts"], r["orbit"]))
+    change = median_run(changes, lambda r: r["page"])
+    for name, r in (("cold server", cold), (f"warm server, new session (median of {len(warms)})", warm)):
         print(f"Shift first render, {name}: headline numbers {r['metrics']:.2f} s, first chart "
-              f"{r['chart']:.2f} s, orbit numbers {r['orbit']:.2f} s, all four charts {r['charts']:.2f} s; "
+              f"{r['chart']:.2f} s, orbit numbers {r['orbit']:.2f} s, all {SHIFT_CHARTS} charts {r['charts']:.2f} s; "
               f"ratio reference/headline {ref_s / r['metrics']:.1f}x; websocket {r['bytes'] / 1e3:.0f} kB "
               f"(largest message {r['largest'] / 1e3:.0f} kB)")
     print(f"floor: a one-number Streamlit page on a warm server shows in {floor:.2f} s here")
-    print(f"window change to 'Last 30 min': page redrawn {change['page']:.2f} s, orbit numbers "
-          f"{change['orbit']:.2f} s (clicks included); websocket {change['bytes'] / 1e3:.0f} kB "
-          f"(largest message {change['largest'] / 1e3:.0f} kB)")
-    ok_first = warm["metrics"] < FIRST_RENDER_BUDGET_S
+    print(f"window change to 'Last 30 min': page redrawn {change['page']:.2f} s after the choice "
+          f"({change['open'] + change['page']:.2f} s with opening the list), orbit numbers {change['orbit']:.2f} s; "
+          f"websocket {change['bytes'] / 1e3:.0f} kB (largest message {change['largest'] / 1e3:.0f} kB)")
+    spread = sorted(max(r["charts"], r["orbit"]) for r in warms)
+    each_change = ", ".join(f"{c['page']:.2f}" for c in changes)
+    print(f"whole page, each warm session: {', '.join(f'{v:.2f}' for v in spread)} s; window change after "
+          f"the choice, each: {each_change} s")
+    # first render: the whole page, every chart drawn and every headline number in
+    full = max(warm["charts"], warm["orbit"])
+    ok_first = full < FIRST_RENDER_BUDGET_S
     ok_change = change["page"] < WINDOW_CHANGE_BUDGET_S
-    print(f"budget first render < {FIRST_RENDER_BUDGET_S:g} s (warm server): {'met' if ok_first else 'NOT met'}; "
-          f"window change < {WINDOW_CHANGE_BUDGET_S:g} s: {'met' if ok_change else 'NOT met'} "
-          f"(load average now {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)")
+    print(f"budget first render < {FIRST_RENDER_BUDGET_S:g} s (warm server, new session, whole page "
+          f"{full:.2f} s): {'met' if ok_first else 'NOT met'}; window change < {WINDOW_CHANGE_BUDGET_S:g} s: "
+          f"{'met' if ok_change else 'NOT met'} (load average now {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)")
     return 0
 
 
