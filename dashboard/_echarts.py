@@ -208,13 +208,15 @@ def envelope_chart(wide: pd.DataFrame, channels: Sequence[str], *, y_title: str,
     index = add_dataset(option, wide)
     colours = colour_map(list(channels))
     for ch in channels:
-        # the band: an invisible line at the minimum with the span stacked on it
+        # the band: an invisible line at the minimum with the span stacked on it ("all": ECharts
+        # otherwise stacks a positive span on the positive stack only, not on a negative minimum)
         stack = f"band {ch}"
         option["series"].append({"type": "line", "name": ch, "datasetIndex": index, "encode": {"x": "t", "y": f"{ch} lo"},
-                                 "stack": stack, "symbol": "none", "lineStyle": {"opacity": 0}, "silent": True,
+                                 "stack": stack, "stackStrategy": "all", "symbol": "none", "lineStyle": {"opacity": 0},
+                                 "silent": True,
                                  "tooltip": {"show": False}, "color": colours[ch]})
         option["series"].append({"type": "line", "name": ch, "datasetIndex": index,
-                                 "encode": {"x": "t", "y": f"{ch} span"}, "stack": stack, "symbol": "none",
+                                 "encode": {"x": "t", "y": f"{ch} span"}, "stack": stack, "stackStrategy": "all", "symbol": "none",
                                  "lineStyle": {"opacity": 0}, "areaStyle": {"opacity": 0.25}, "silent": True,
                                  "tooltip": {"show": False}, "color": colours[ch]})
         option["series"].append({"type": "line", "name": ch, "datasetIndex": index, "encode": {"x": "t", "y": ch},
@@ -245,7 +247,7 @@ def drift_chart(wide: pd.DataFrame, bpms: Sequence[str], *, y_title: str, domain
     if highlight is not None and "band lo" in wide:
         for col, area in (("band lo", None), ("band span", {"opacity": 0.2})):
             option["series"].append({"type": "line", "name": f"{highlight} min/max", "datasetIndex": index,
-                                     "encode": {"x": "t", "y": col}, "stack": "band", "symbol": "none",
+                                     "encode": {"x": "t", "y": col}, "stack": "band", "stackStrategy": "all", "symbol": "none",
                                      "lineStyle": {"opacity": 0}, "silent": True, "tooltip": {"show": False},
                                      "color": DRIFT_RED, **({"areaStyle": area} if area else {})})
     add_events(option, events, event_colours)

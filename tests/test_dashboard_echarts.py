@@ -136,6 +136,8 @@ def test_drift_chart_draws_one_line_per_bpm_and_the_band_of_the_picked_one():
     assert [s["lineStyle"]["color"] for s in lines] == [_echarts.DRIFT_GREY] * 2 + [_echarts.DRIFT_RED]
     band = [s for s in option["series"] if s.get("stack") == "band"]
     assert [s["encode"]["y"] for s in band] == ["band lo", "band span"] and "areaStyle" in band[1]
+    # a negative minimum: the span must stack on it, whatever its sign (ECharts' default stacks by sign)
+    assert all(s["stackStrategy"] == "all" for s in band)
     assert "legend" not in option  # no events: no legend to read
 
 
