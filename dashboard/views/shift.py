@@ -238,7 +238,8 @@ def size_points(prof: pd.DataFrame, frames: pd.DataFrame) -> pd.DataFrame:
         parts.append(pd.DataFrame({
             "t": _ui.times_ms(prof["timestamp"]), "series": (prof["device"].astype(str) + " " + prof["plane"].astype(str)),
             "source": "wire scan", "value": prof["sigma_m"].to_numpy(float) * _ui.UM_PER_M,
-            "err": err.to_numpy(float) * _ui.UM_PER_M, "si": prof["sigma_m"].to_numpy(float), "note": "σ (m)"}))
+            "err": err.to_numpy(float) * _ui.UM_PER_M, "si": prof["sigma_m"].to_numpy(float),
+            "note": "wire scan"}))
     for plane in ("x", "y"):
         col = f"projection_{plane}_sigma_m"
         if frames.empty or col not in frames:
@@ -246,13 +247,11 @@ def size_points(prof: pd.DataFrame, frames: pd.DataFrame) -> pd.DataFrame:
         parts.append(pd.DataFrame({
             "t": _ui.times_ms(frames["timestamp"]), "series": frames["device"].astype(str) + f" {plane}",
             "source": "screen", "value": frames[col].to_numpy(float) * _ui.UM_PER_M, "err": np.nan,
-            "si": frames[col].to_numpy(float), "note": "projection σ (m)"}))
+            "si": frames[col].to_numpy(float), "note": "screen, projection"}))
     if not parts:
-        return pd.DataFrame(columns=["t", "series", "source", "value", "err", "lo", "hi", "si", "note"])
+        return pd.DataFrame(columns=["t", "series", "source", "value", "err", "si", "note"])
     out = pd.concat(parts, ignore_index=True)
-    out = out[np.isfinite(out["value"])].sort_values(["series", "t"], kind="stable").reset_index(drop=True)
-    out["lo"], out["hi"] = out["value"] - out["err"], out["value"] + out["err"]
-    return out
+    return out[np.isfinite(out["value"])].sort_values(["series", "t"], kind="stable").reset_index(drop=True)
 
 
 def beam_sizes(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
@@ -288,9 +287,7 @@ def emittance_points(res: pd.DataFrame) -> pd.DataFrame:
             "value": value * _ui.MM_MRAD_PER_M_RAD, "err": err.to_numpy(float) * _ui.MM_MRAD_PER_M_RAD,
             "si": value, "note": res.get("scan_name", pd.Series("", index=res.index)).astype(str).to_numpy()}))
     out = pd.concat(parts, ignore_index=True)
-    out = out[np.isfinite(out["value"])].reset_index(drop=True)
-    out["lo"], out["hi"] = out["value"] - out["err"], out["value"] + out["err"]
-    return out
+    return out[np.isfinite(out["value"])].reset_index(drop=True)
 
 
 def emittance_trend(root: str, stamp: str, window: _data.Window, events: pd.DataFrame) -> None:
