@@ -197,7 +197,7 @@ def main() -> int:
 
         store = Path(tempfile.mkdtemp(prefix="bench-dash-")) / "store"
         print(f"no store at {args.store}: building a 2-hour demo store in {store} ...", flush=True)
-        # 08:00-10:00 holds the 08:15 quad scan, so the page has all four charts
+        # 08:00-10:00 holds the 08:15 quad scan, so the page has all its charts
         build_demo_store(store, start="08:00", hours=2.0)
         note = " (2-hour demo store, not the whole shift)"
     from playwright.sync_api import sync_playwright
