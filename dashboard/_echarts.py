@@ -94,10 +94,14 @@ def event_frames(events: pd.DataFrame | None, times_ms,
             frame.loc[band & keep].reset_index(drop=True))
 
 
-def add_events(option: dict, events: tuple[pd.DataFrame, pd.DataFrame], colours: Mapping[str, str]) -> None:
-    """One legend entry per event kind: dotted vertical lines at its times, light bands for intervals."""
+def add_events(option: dict, events: tuple[pd.DataFrame, pd.DataFrame], colours: Mapping[str, str]) -> list[str]:
+    """One legend entry per event kind: dotted vertical lines at its times, light bands for intervals.
+
+    Returns the kinds marked, in order.
+    """
     points, bands = events
-    for kind in dict.fromkeys([*points["kind"], *bands["kind"]]):
+    kinds = list(dict.fromkeys([*points["kind"], *bands["kind"]]))
+    for kind in kinds:
         colour = colours.get(kind, "#7f7f7f")
         series: dict[str, Any] = paint({"type": "line", "name": kind, "data": [], "symbol": "none",
                                         "lineStyle": {"type": "dotted"}}, colour)
@@ -119,6 +123,7 @@ def add_events(option: dict, events: tuple[pd.DataFrame, pd.DataFrame], colours:
                                            for t0, t1, label, text in zip(b["t"], b["t2"], b["label"],
                                                                           time_text(b["t"]), strict=True)]}
         option["series"].append(series)
+    return kinds
 
 
 def paint(series: dict, colour: str) -> dict:
@@ -152,6 +157,19 @@ def error_segments(t: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> pd.DataFram
     xs = np.column_stack([t, t, np.full(t.size, np.nan)]).reshape(-1)
     ys = np.column_stack([lo, hi, np.full(t.size, np.nan)]).reshape(-1)
     return pd.DataFrame({"t": xs, "y": ys})
+
+
+def band_series(name: str, index: int, lo: str, span: str, *, stack: str, colour: str, opacity: float) -> list[dict]:
+    """A min/max band from dataset ``index``: an invisible line at column ``lo``, column ``span`` stacked on it.
+
+    ``stackStrategy: "all"``: ECharts otherwise stacks a positive span only on the
+    positive part of the stack, so a band with a negative minimum would start at 0.
+    """
+    common = {"type": "line", "name": name, "datasetIndex": index, "stack": stack, "stackStrategy": "all",
+              "symbol": "none", "lineStyle": {"opacity": 0}, "silent": True, "tooltip": {"show": False},
+              "color": colour}
+    return [{**common, "encode": {"x": "t", "y": lo}},
+            {**common, "encode": {"x": "t", "y": span}, "areaStyle": {"opacity": opacity}}]
 
 
 def results_chart(data: pd.DataFrame, *, y_title: str, unit: str, si_unit: str, domain_ms: tuple[float, float],
@@ -208,17 +226,8 @@ def envelope_chart(wide: pd.DataFrame, channels: Sequence[str], *, y_title: str,
     index = add_dataset(option, wide)
     colours = colour_map(list(channels))
     for ch in channels:
-        # the band: an invisible line at the minimum with the span stacked on it ("all": ECharts
-        # otherwise stacks a positive span on the positive stack only, not on a negative minimum)
-        stack = f"band {ch}"
-        option["series"].append({"type": "line", "name": ch, "datasetIndex": index, "encode": {"x": "t", "y": f"{ch} lo"},
-                                 "stack": stack, "stackStrategy": "all", "symbol": "none", "lineStyle": {"opacity": 0},
-                                 "silent": True,
-                                 "tooltip": {"show": False}, "color": colours[ch]})
-        option["series"].append({"type": "line", "name": ch, "datasetIndex": index,
-                                 "encode": {"x": "t", "y": f"{ch} span"}, "stack": stack, "stackStrategy": "all", "symbol": "none",
-                                 "lineStyle": {"opacity": 0}, "areaStyle": {"opacity": 0.25}, "silent": True,
-                                 "tooltip": {"show": False}, "color": colours[ch]})
+        option["series"].extend(band_series(ch, index, f"{ch} lo", f"{ch} span", stack=f"band {ch}",
+                                            colour=colours[ch], opacity=0.25))
         option["series"].append({"type": "line", "name": ch, "datasetIndex": index, "encode": {"x": "t", "y": ch},
                                  "symbol": "none", "lineStyle": {"width": 1.5}, "color": colours[ch]})
     add_events(option, events, event_colours)
@@ -234,7 +243,6 @@ def drift_chart(wide: pd.DataFrame, bpms: Sequence[str], *, y_title: str, domain
     the line) and, for ``highlight``, ``band lo`` and ``band span``.
     """
     option = base(y_title=y_title, domain_ms=domain_ms, legend=False)
-    option["grid"]["bottom"] = 28
     index = add_dataset(option, wide)
     for bpm in bpms:
         mine = bpm == highlight
@@ -245,14 +253,10 @@ def drift_chart(wide: pd.DataFrame, bpms: Sequence[str], *, y_title: str, domain
             "lineStyle": {"width": 1.6 if mine else 0.8, "opacity": 1.0 if mine else 0.55},
             "tooltip": {"valueFormatter": "%.1f µm"}})
     if highlight is not None and "band lo" in wide:
-        for col, area in (("band lo", None), ("band span", {"opacity": 0.2})):
-            option["series"].append({"type": "line", "name": f"{highlight} min/max", "datasetIndex": index,
-                                     "encode": {"x": "t", "y": col}, "stack": "band", "stackStrategy": "all", "symbol": "none",
-                                     "lineStyle": {"opacity": 0}, "silent": True, "tooltip": {"show": False},
-                                     "color": DRIFT_RED, **({"areaStyle": area} if area else {})})
-    add_events(option, events, event_colours)
-    if any(s.get("markLine") or s.get("markArea") for s in option["series"]):
-        option["legend"] = {"type": "scroll", "bottom": 0, "left": 0,
-                            "data": [k for k in event_colours if any(s["name"] == k for s in option["series"])]}
+        option["series"].extend(band_series(f"{highlight} min/max", index, "band lo", "band span", stack="band",
+                                            colour=DRIFT_RED, opacity=0.2))
+    kinds = add_events(option, events, event_colours)
+    if kinds:  # the only legend here: which event is which (the BPMs are named in the caption)
+        option["legend"] = {"type": "scroll", "bottom": 0, "left": 0, "data": kinds}
         option["grid"]["bottom"] = 56
     return finish(option)

@@ -244,7 +244,9 @@ def fmt_pm(value: Any, err: Any, scale: float = 1.0, unit: str = "", digits: int
 
 
 #: Unit names as stored (ASCII, as the channel files give them) -> as operators read them.
-UNIT_TEXT = {"degc": "°C", "deg c": "°C", "c": "°C", "degk": "K", "k": "K", "um": "µm", "mm": "mm", "m": "m"}
+UNIT_TEXT = {"degc": "°C", "deg c": "°C", "°c": "°C", "c": "°C", "degk": "K", "k": "K", "um": "µm"}
+#: Units (as shown) that make a slow channel a temperature.
+TEMPERATURE_UNITS = ("°C", "K")
 
 
 def unit_text(unit: Any) -> str:

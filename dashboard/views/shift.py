@@ -356,7 +356,7 @@ def orbit_drift(root: str, stamp: str, window: _data.Window, report, events: pd.
 def temperature_channels(slow: pd.DataFrame) -> tuple[pd.Series, tuple[str, ...]]:
     """The unit of each slow channel, and the channels whose unit is a temperature."""
     units = slow.groupby("channel", sort=True)["unit"].first()
-    return units, tuple(ch for ch, u in units.items() if str(u).lower() in ("degc", "°c", "c", "k", "degk"))
+    return units, tuple(ch for ch, u in units.items() if _ui.unit_text(u) in _ui.TEMPERATURE_UNITS)
 
 
 def temperature_trend(root: str, stamp: str, window: _data.Window, temps: tuple[str, ...]) -> pd.DataFrame:
