@@ -915,9 +915,10 @@ def window_moments(
         good = ok & (tot > 0) & (var > 0)
         sig = np.where(good, np.sqrt(np.where(good, var, 1.0)), np.nan)
         mu = np.where(good, mu + xr[:, 0], np.nan)
-        # d(rms^2)/dy_i = w_i (d_i^2 - rms^2) / tot; rms_err = |grad| / (2 rms) per unit noise
-        grad = wm * (d2 - sig[:, None] ** 2) / tot[:, None]
-        err_unit = np.where(good, np.sqrt((grad**2).sum(1)) / (2.0 * sig), np.nan)
+        # d(rms^2)/dy_i = w_i (d_i^2 - rms^2) / tot; rms_err = |grad| / (2 rms) per unit noise.
+        # The 1/tot factor comes last: squared first it overflows for a tiny signal (|y| ~ 1e-280).
+        norm = np.sqrt(((wm * (d2 - sig[:, None] ** 2)) ** 2).sum(1))
+        err_unit = np.where(good, norm / (2.0 * sig) / np.where(good, tot, 1.0), np.nan)
     return mu, sig, err_unit, mask.sum(1)
 
 
